@@ -1,0 +1,257 @@
+"""Validation protocol (retention-physics.md section 8).
+
+Whole source publications are left out (grouped folds, never rows). For every left-out
+system: median and mean absolute error in minutes and as % of the system's last observed
+time, Spearman rho, and pairwise elution-order accuracy over pairs observed more than
+0.5 min apart; zero-shot and with 10 random calibrants (averaged over draws), next to two
+baselines computed in the same run: log P + the same calibrants, and a pooled descriptor
+gradient-boosting model (zero-shot scaled by the program length, and + calibrants).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+import pandas as pd
+from scipy.stats import siegelslopes, spearmanr
+from sklearn.ensemble import HistGradientBoostingRegressor
+from sklearn.model_selection import GroupKFold
+
+from retpred.calibration import fit_calibration
+from retpred.gradient import elute
+from retpred.training import TrainingSet, fit_model
+
+ORDER_MIN_GAP_MIN = 0.5
+N_CALIBRANTS = 10
+MIN_SYSTEM_SIZE = 20
+
+
+def order_accuracy(rt_obs: np.ndarray, rt_pred: np.ndarray, min_gap: float = ORDER_MIN_GAP_MIN):
+    """Fraction of pairs (observed more than ``min_gap`` apart) predicted in the right order."""
+    o = np.asarray(rt_obs, float)
+    p = np.asarray(rt_pred, float)
+    ok = np.isfinite(o) & np.isfinite(p)
+    o, p = o[ok], p[ok]
+    if o.size < 2:
+        return float("nan")
+    if o.size > 3000:  # subsample for very large systems (deterministic)
+        idx = np.random.default_rng(0).choice(o.size, 3000, replace=False)
+        o, p = o[idx], p[idx]
+    do = o[:, None] - o[None, :]
+    dp = p[:, None] - p[None, :]
+    mask = np.triu(np.abs(do) > min_gap, 1)
+    if not mask.any():
+        return float("nan")
+    return float(np.mean(np.sign(do[mask]) == np.sign(dp[mask])))
+
+
+def system_metrics(rt_obs: np.ndarray, rt_pred: np.ndarray) -> dict:
+    o = np.asarray(rt_obs, float)
+    p = np.asarray(rt_pred, float)
+    ok = np.isfinite(o) & np.isfinite(p)
+    scale = float(np.nanmax(o)) if o.size else float("nan")
+    err = np.abs(p[ok] - o[ok])
+    if err.size == 0:
+        return {"n": 0, "medae_min": np.nan, "mae_min": np.nan, "medae_pct": np.nan,
+                "mae_pct": np.nan, "spearman": np.nan, "order_acc": np.nan,
+                "coverage_pred": 0.0}
+    const = ok.sum() <= 2 or np.ptp(o[ok]) == 0 or np.ptp(p[ok]) == 0
+    rho = np.nan if const else spearmanr(o[ok], p[ok]).statistic
+    return {
+        "n": int(ok.sum()),
+        "medae_min": float(np.median(err)),
+        "mae_min": float(np.mean(err)),
+        "medae_pct": float(100 * np.median(err) / scale),
+        "mae_pct": float(100 * np.mean(err) / scale),
+        "spearman": float(rho),
+        "order_acc": order_accuracy(o, p),
+        "coverage_pred": float(ok.mean()),
+    }
+
+
+def _robust_line(x: np.ndarray, y: np.ndarray):
+    ok = np.isfinite(x) & np.isfinite(y)
+    if ok.sum() >= 3 and np.ptp(x[ok]) > 0:
+        r = siegelslopes(y[ok], x[ok])
+        return r.slope, r.intercept
+    return 0.0, float(np.nanmedian(y - x)) if ok.any() else 0.0
+
+
+def calibrate_on(pred_lk, obs_lk, obs_rt, s, prog, pick):
+    """Fit the user-facing calibration on the calibrants ``pick`` of one system."""
+    s_pick = s[pick]
+    return fit_calibration(pred_lk[pick], obs_lk[pick], obs_rt[pick],
+                           lambda v: elute(v, s_pick, prog).rt_min)
+
+
+@dataclass
+class FoldPredictions:
+    log_kw: np.ndarray  # held-out predicted log kw per row
+    fold: np.ndarray  # fold id per row
+    baseline_frac: np.ndarray  # descriptor-GBM prediction of rt / program end
+
+
+def descriptor_baseline(ts: TrainingSet, train: np.ndarray, test: np.ndarray) -> np.ndarray:
+    """Pooled descriptor GBM predicting rt as a fraction of the program length."""
+    ends = np.array([s.program.program_end_min for s in ts.systems])[ts.system_idx]
+    y = ts.rt_min / ends
+    x = np.column_stack(
+        [ts.solutes.descriptors[ts.solute_idx], ts.solutes.fingerprints[ts.solute_idx]]
+    )
+    gbm = HistGradientBoostingRegressor(max_iter=200, learning_rate=0.08, random_state=0)
+    gbm.fit(x[train], y[train])
+    return gbm.predict(x[test])
+
+
+def cross_validate(ts: TrainingSet, n_folds: int = 5, with_baseline: bool = True,
+                   **params) -> FoldPredictions:
+    groups = ts.groups
+    n_folds = min(n_folds, len(np.unique(groups)))
+    lk = np.full(ts.rt_min.size, np.nan)
+    base = np.full(ts.rt_min.size, np.nan)
+    fold = np.full(ts.rt_min.size, -1)
+    for f, (tr, te) in enumerate(GroupKFold(n_splits=n_folds).split(ts.rt_min, groups=groups)):
+        trm = np.zeros(ts.rt_min.size, bool)
+        trm[tr] = True
+        model = fit_model(ts, trm, **params)
+        tem = ~trm
+        lk[tem] = model.retention_parameters(
+            ts.solutes, ts.contexts, which=ts.system_idx[tem], idx=ts.solute_idx[tem]
+        )[0]
+        if with_baseline:
+            base[tem] = descriptor_baseline(ts, tr, te)
+        fold[tem] = f
+    return FoldPredictions(log_kw=lk, fold=fold, baseline_frac=base)
+
+
+def evaluate(ts: TrainingSet, fp: FoldPredictions, n_draws: int = 5, seed: int = 0,
+             quantiles=(0.05, 0.95)) -> pd.DataFrame:
+    """One row per left-out system with model and baseline figures."""
+    rng = np.random.default_rng(seed)
+    resid = (ts.log_kw - fp.log_kw) / ts.s  # elution-composition error, phi units
+    rows = []
+    cal_resid = []  # (fold, system row index, residuals in phi units) for interval coverage
+    cal_cov_obs = []
+    logp = ts.solutes.logp[ts.solute_idx]
+    for sysi in np.unique(ts.system_idx):
+        m = np.flatnonzero(ts.system_idx == sysi)
+        if m.size < MIN_SYSTEM_SIZE:
+            continue
+        system = ts.systems[sysi]
+        prog = system.program
+        s = ts.s[m]
+        obs = ts.rt_min[m]
+        f = fp.fold[m[0]]
+        other = (fp.fold != f) & np.isfinite(resid)
+        q_lo, q_hi = np.quantile(resid[other], quantiles)
+        pred_lk = fp.log_kw[m]
+        rt_zero = elute(pred_lk, s, prog).rt_min
+        row = {"dataset": system.dataset, "group": system.group, "n": m.size,
+               "phase": system.phase, "organic": system.organic, "ph": system.ph,
+               "last_rt_min": float(obs.max())}
+        zs = system_metrics(obs, rt_zero)
+        row.update({f"zero_{k}": v for k, v in zs.items()})
+        lo = elute(pred_lk + q_lo * s, s, prog).rt_min
+        hi = elute(pred_lk + q_hi * s, s, prog).rt_min
+        inside = (obs >= lo) & (obs <= hi)
+        row["zero_interval_coverage"] = float(np.mean(inside))
+        row["zero_interval_hits"] = int(inside.sum())
+        base_rt = fp.baseline_frac[m] * prog.program_end_min
+        bz = system_metrics(obs, base_rt)
+        row["gbm_zero_medae_pct"] = bz["medae_pct"]
+        cal_stats, logp_stats, gbm_stats = [], [], []
+        for _ in range(n_draws):
+            pick = rng.choice(m.size, N_CALIBRANTS, replace=False)
+            rest = np.setdiff1d(np.arange(m.size), pick)
+            cal = calibrate_on(pred_lk, ts.log_kw[m], obs, s, prog, pick)
+            lk_cal = cal.apply(pred_lk[rest])
+            rt_cal = elute(lk_cal, s[rest], prog).rt_min
+            cal_stats.append(system_metrics(obs[rest], rt_cal))
+            cal_resid.append((f, len(rows), (ts.log_kw[m][rest] - lk_cal) / s[rest]))
+            cal_cov_obs.append((lk_cal, s[rest], obs[rest], prog))
+            b, a = _robust_line(logp[m][pick], obs[pick])
+            logp_stats.append(system_metrics(obs[rest], a + b * logp[m][rest]))
+            b2, a2 = _robust_line(base_rt[pick], obs[pick])
+            gbm_stats.append(system_metrics(obs[rest], a2 + b2 * base_rt[rest]))
+        for prefix, stats in (("cal", cal_stats), ("logp_cal", logp_stats),
+                              ("gbm_cal", gbm_stats)):
+            for k in ("medae_pct", "mae_pct", "medae_min", "spearman", "order_acc"):
+                row[f"{prefix}_{k}"] = float(np.nanmean([st[k] for st in stats]))
+        rows.append(row)
+    # calibrated interval coverage, quantiles from the other folds' calibrated residuals
+    folds = np.array([c[0] for c in cal_resid])
+    hits = np.zeros(len(rows))
+    total = np.zeros(len(rows))
+    for (f, ri, _r), (lk_cal, s_r, obs_r, prog) in zip(cal_resid, cal_cov_obs, strict=True):
+        pool = np.concatenate([c[2] for c, ff in zip(cal_resid, folds, strict=True) if ff != f])
+        q_lo, q_hi = np.quantile(pool[np.isfinite(pool)], quantiles)
+        lo = elute(lk_cal + q_lo * s_r, s_r, prog).rt_min
+        hi = elute(lk_cal + q_hi * s_r, s_r, prog).rt_min
+        hits[ri] += np.sum((obs_r >= lo) & (obs_r <= hi))
+        total[ri] += obs_r.size
+    table = pd.DataFrame(rows)
+    if len(table):
+        table["cal_interval_coverage"] = hits / np.maximum(total, 1)
+        table["cal_interval_hits"] = hits
+        table["cal_interval_n"] = total
+    return table
+
+
+def summarise(table: pd.DataFrame) -> dict:
+    """Medians over left-out systems."""
+    cols = [c for c in table.columns if c.startswith(("zero_", "cal_", "logp_cal_", "gbm_"))]
+    out = {c: float(np.nanmedian(table[c])) for c in cols if not c.endswith(("_hits", "_n"))}
+    out["n_systems"] = int(len(table))
+    if "zero_interval_hits" in table:
+        out["zero_interval_coverage_pooled"] = float(
+            table["zero_interval_hits"].sum() / table["zero_n"].sum())
+    if "cal_interval_hits" in table:
+        out["cal_interval_coverage_pooled"] = float(
+            table["cal_interval_hits"].sum() / table["cal_interval_n"].sum())
+    if out.get("gbm_cal_medae_pct"):
+        out["ratio_cal_vs_gbm_cal"] = out["cal_medae_pct"] / out["gbm_cal_medae_pct"]
+    if out.get("logp_cal_medae_pct"):
+        out["ratio_cal_vs_logp_cal"] = out["cal_medae_pct"] / out["logp_cal_medae_pct"]
+    return out
+
+
+def residual_quantiles(ts: TrainingSet, fp: FoldPredictions, q=(0.05, 0.95)) -> list[float]:
+    """Quantiles of the held-out error in elution-composition units, (obs - pred) / S:
+    an interval ``log kw + q S`` widens with S as a gradient's time error does."""
+    r = (ts.log_kw - fp.log_kw) / ts.s
+    r = r[np.isfinite(r)]
+    return [float(v) for v in np.quantile(r, q)]
+
+
+def calibrated_residual_quantiles(ts: TrainingSet, fp: FoldPredictions, q=(0.05, 0.95),
+                                  seed: int = 1) -> tuple[list[float], float]:
+    """log kw residual quantiles after a 10-calibrant shift/linear correction on left-out
+    systems, and the correlation of neighbours' time errors (elution-order neighbours)."""
+    rng = np.random.default_rng(seed)
+    res_all, pairs_a, pairs_b = [], [], []
+    for sysi in np.unique(ts.system_idx):
+        m = np.flatnonzero(ts.system_idx == sysi)
+        if m.size < MIN_SYSTEM_SIZE:
+            continue
+        prog = ts.systems[sysi].program
+        s = ts.s[m]
+        pred = fp.log_kw[m]
+        pick = rng.choice(m.size, N_CALIBRANTS, replace=False)
+        rest = np.setdiff1d(np.arange(m.size), pick)
+        cal = calibrate_on(pred, ts.log_kw[m], ts.rt_min[m], s, prog, pick)
+        corr = cal.apply(pred[rest])
+        res_all.append((ts.log_kw[m][rest] - corr) / s[rest])
+        rt_p = elute(corr, s[rest], prog).rt_min
+        e = ts.rt_min[m][rest] - rt_p
+        order = np.argsort(rt_p)
+        e = e[order]
+        ok = np.isfinite(e)
+        e = e[ok]
+        pairs_a.append(e[:-1])
+        pairs_b.append(e[1:])
+    r = np.concatenate(res_all)
+    r = r[np.isfinite(r)]
+    a, b = np.concatenate(pairs_a), np.concatenate(pairs_b)
+    rho = float(np.corrcoef(a, b)[0, 1]) if a.size > 3 else 0.0
+    return [float(v) for v in np.quantile(r, q)], rho

@@ -1,0 +1,320 @@
+"""Retention parameters from structure: LSS ``log kw`` and ``S`` for a given system.
+
+For a solute on a system (column, organic modifier, pH, temperature)::
+
+    log kw = g(solute, modifier)                       learned (gradient boosting)
+           + z(solute, column, T, modifier) . w        learned (ridge, HSM-style terms)
+           + log10(kEB / kEB_ref)                      column retentivity (HSM definition)
+           + log10(f0 + (1 - f0) 10^-drop)             species-weighted retention (pH)
+    S      = 0.25 * MW^0.5                              (Snyder and Dolan's rule of thumb)
+
+The column term follows the hydrophobic-subtraction model (Snyder, Dolan, Carr; J.
+Chromatogr. A 1060 (2004) 77): ``log(k/kEB) = eta' H - sigma' S* + beta' A + alpha' B +
+kappa' C``. Column parameters enter as differences from the reference (the C18 class
+median); the solute coefficients ``eta'``, ``sigma'``, ``beta'``, ``alpha'``, ``kappa'`` are
+linear in solute descriptors (log P, bulk, H-bond acceptors/donors, protonated fraction)
+and fitted on the open data. C8 and C18 therefore differ only through their column
+parameters. Ionisation is the classical species-weighted mix ``k = f0 k_n + (1 - f0) k_ion``
+(retention-physics.md section 4), which keeps the LSS form with a shifted ``log kw``.
+
+Training turns every observed time into ``log kw`` exactly through the gradient engine
+(``retpred.gradient.log_kw_from_rt``) with that system's own program.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+from collections.abc import Sequence
+from dataclasses import dataclass, field
+from datetime import UTC, datetime
+
+import numpy as np
+from sklearn.ensemble import HistGradientBoostingRegressor
+from sklearn.linear_model import Ridge
+
+from retpred import __version__
+from retpred.chemistry import (
+    DESCRIPTOR_NAMES,
+    Ionisation,
+    SiteTable,
+    compute_descriptors,
+    compute_fingerprints,
+    find_ionisable_sites,
+    ionise,
+)
+from retpred.method import HsmParameters
+from retpred.structures import StandardisedBatch, standardise_mols, standardise_smiles
+
+#: Model-file format version; a file of another format is refused.
+MODEL_FORMAT = 1
+N_BITS = 256
+#: Snyder and Dolan's rule of thumb S = 0.25 M^0.5 (retention-physics.md section 2).
+S_RULE_COEF = 0.25
+#: Drop of log k on full ionisation, acids and bases (initial values; refitted on the pH
+#: series of the open data by the training script when present).
+DEFAULT_ION_DROP = 1.0
+REFERENCE_TEMPERATURE_C = 30.0
+
+
+def _d(name: str) -> int:
+    return DESCRIPTOR_NAMES.index(name)
+
+
+@dataclass(frozen=True)
+class Solutes:
+    """Everything the model needs to know of a batch of analytes (one row per input)."""
+
+    batch: StandardisedBatch
+    descriptors: np.ndarray
+    fingerprints: np.ndarray
+    sites: SiteTable
+
+    @property
+    def usable(self) -> np.ndarray:
+        return self.batch.usable
+
+    def __len__(self) -> int:
+        return len(self.batch.smiles)
+
+    @property
+    def logp(self) -> np.ndarray:
+        return self.descriptors[:, _d("logp")]
+
+    @property
+    def mw(self) -> np.ndarray:
+        return self.descriptors[:, _d("mw")]
+
+
+def featurise(smiles: Sequence[str] | None = None, mols: Sequence | None = None) -> Solutes:
+    """Standardise and describe a batch (SMILES, or RDKit molecules from an SDF)."""
+    batch = standardise_mols(mols) if mols is not None else standardise_smiles(smiles or [])
+    return Solutes(
+        batch=batch,
+        descriptors=compute_descriptors(batch.mols),
+        fingerprints=compute_fingerprints(batch.mols, n_bits=N_BITS),
+        sites=find_ionisable_sites(batch.mols),
+    )
+
+
+@dataclass(frozen=True)
+class SystemContext:
+    """What the model needs of a chromatographic system."""
+
+    organic: str
+    ph: float
+    temperature_c: float
+    hsm: HsmParameters
+
+
+def s_parameter(mw: np.ndarray) -> np.ndarray:
+    """LSS slope ``S = 0.25 sqrt(M)`` (Snyder and Dolan rule of thumb; M in g/mol)."""
+    return S_RULE_COEF * np.sqrt(np.clip(mw, 30.0, 3000.0))
+
+
+def ion_term(ion: Ionisation, drop_acid: float, drop_base: float) -> np.ndarray:
+    """``log10(f0 + (1 - f0) 10^-drop)``, drop weighted by the anionic and cationic charge."""
+    pos, neg = ion.positive_charge, ion.negative_charge
+    tot = pos + neg
+    w_base = np.where(tot > 0, pos / np.where(tot > 0, tot, 1.0), 0.5)
+    drop = w_base * drop_base + (1 - w_base) * drop_acid
+    f0 = np.clip(ion.f_neutral, 0.0, 1.0)
+    return np.log10(f0 + (1.0 - f0) * 10.0 ** (-drop))
+
+
+# Names of the HSM-style interaction features, in order (documentation and model card).
+COLUMN_TERM_NAMES = (
+    "dH", "dH*logp", "dS*", "dS*x bulk", "dA", "dA*hba", "dB", "dB*hbd", "dC*cation",
+    "d(1/T)", "d(1/T)*logp", "methanol", "methanol*logp", "methanol*tpsa", "methanol*hbd",
+    "cation", "anion",
+)
+
+
+def column_features(
+    solutes: Solutes, idx: np.ndarray, ctx_arrays: dict, ion: Ionisation, ref: HsmParameters
+) -> np.ndarray:
+    """Interaction matrix z for rows ``idx`` of ``solutes`` on their systems.
+
+    ``ctx_arrays`` holds per-row arrays H, S, A, B, C (at the row's pH), inv_t (1000/K)
+    and meoh (0/1).
+    """
+    d = solutes.descriptors[idx]
+    logp = d[:, _d("logp")]
+    bulk = d[:, _d("heavy_atoms")] / 10.0
+    hba = d[:, _d("hba")]
+    hbd = d[:, _d("hbd")]
+    tpsa = d[:, _d("tpsa")] / 100.0
+    c_ref = ref.c_at_ph(3.0)
+    dh = ctx_arrays["H"] - ref.H
+    ds = ctx_arrays["S"] - ref.S
+    da = ctx_arrays["A"] - ref.A
+    db = ctx_arrays["B"] - ref.B
+    dc = ctx_arrays["C"] - c_ref
+    dt = ctx_arrays["inv_t"] - 1000.0 / (REFERENCE_TEMPERATURE_C + 273.15)
+    me = ctx_arrays["meoh"]
+    cation = ion.positive_charge
+    anion = ion.negative_charge
+    return np.column_stack(
+        [dh, dh * logp, ds, ds * bulk, da, da * hba, db, db * hbd, dc * cation,
+         dt, dt * logp, me, me * logp, me * tpsa, me * hbd, cation, anion]
+    )
+
+
+def solute_matrix(solutes: Solutes, idx: np.ndarray, meoh: np.ndarray) -> np.ndarray:
+    """Features of the learned solute term g: descriptors, fingerprint counts, modifier."""
+    return np.column_stack(
+        [solutes.descriptors[idx], solutes.fingerprints[idx].astype(np.float32), meoh]
+    )
+
+
+def context_arrays(contexts: Sequence[SystemContext], which: np.ndarray) -> dict:
+    """Per-row column/system arrays from a list of contexts and each row's context index."""
+    h = np.array([c.hsm.H for c in contexts])[which]
+    s = np.array([c.hsm.S for c in contexts])[which]
+    a = np.array([c.hsm.A for c in contexts])[which]
+    b = np.array([c.hsm.B for c in contexts])[which]
+    cc = np.array([c.hsm.c_at_ph(c.ph) for c in contexts])[which]
+    keb = np.array([c.hsm.kEB for c in contexts])[which]
+    inv_t = np.array([1000.0 / (c.temperature_c + 273.15) for c in contexts])[which]
+    meoh = np.array([1.0 if c.organic == "methanol" else 0.0 for c in contexts])[which]
+    ph = np.array([c.ph for c in contexts])[which]
+    return {"H": h, "S": s, "A": a, "B": b, "C": cc, "kEB": keb, "inv_t": inv_t,
+            "meoh": meoh, "ph": ph}
+
+
+@dataclass
+class RetentionModel:
+    """Learned part of the retention model; see the module docstring for the equation.
+
+    Attributes ending in ``_`` are learned by :meth:`fit`.
+    """
+
+    reference: HsmParameters
+    ion_drop_acid: float = DEFAULT_ION_DROP
+    ion_drop_base: float = DEFAULT_ION_DROP
+    gbm_max_iter: int = 300
+    gbm_learning_rate: float = 0.08
+    ridge_alpha: float = 1.0
+    random_state: int = 0
+    ridge_: Ridge | None = None
+    gbm_: HistGradientBoostingRegressor | None = None
+    #: quantiles of held-out log kw residuals {"zero_shot": [...], "calibrated": [...]}
+    residual_quantiles_: dict = field(default_factory=dict)
+    #: standard deviation of held-out residuals, and neighbour correlation
+    residual_sd_: dict = field(default_factory=dict)
+    metrics_: dict = field(default_factory=dict)
+    meta_: dict = field(default_factory=dict)
+    #: lab correction learned by ``retpred train``: {"offset", "slope", "pivot"} applied to
+    #: the open-data prediction, then ``lab_gbm_`` on the remaining residual (or None)
+    lab_linear_: dict | None = None
+    lab_gbm_: HistGradientBoostingRegressor | None = None
+
+    # --- prediction ------------------------------------------------------------------
+    def retention_parameters(
+        self, solutes: Solutes, ctx: SystemContext | Sequence[SystemContext],
+        which: np.ndarray | None = None, idx: np.ndarray | None = None,
+    ) -> tuple[np.ndarray, np.ndarray]:
+        """``(log_kw, S)`` of rows ``idx`` (default all) on their systems.
+
+        ``ctx`` is one context for all rows, or a list with ``which`` giving each row's.
+        Unusable molecules get NaN.
+        """
+        n = len(solutes)
+        idx = np.arange(n) if idx is None else np.asarray(idx)
+        if isinstance(ctx, SystemContext):
+            contexts, which = [ctx], np.zeros(idx.size, dtype=int)
+        else:
+            contexts = list(ctx)
+        arr = context_arrays(contexts, which)
+        ion = ionise(_take_sites(solutes.sites, idx), arr["ph"])
+        log_kw = np.full(idx.size, np.nan)
+        s = s_parameter(solutes.mw[idx])
+        ok = solutes.usable[idx] & np.all(np.isfinite(solutes.descriptors[idx]), axis=1)
+        if ok.any():
+            fixed = self._fixed_terms(arr, ion)
+            z = column_features(solutes, idx, arr, ion, self.reference)
+            x = solute_matrix(solutes, idx, arr["meoh"])
+            lin = np.column_stack([z[ok], solutes.descriptors[idx][ok]])
+            pred = self.gbm_.predict(x[ok]) + self.ridge_.predict(lin) + fixed[ok]
+            if self.lab_linear_ is not None:
+                pred = self.apply_lab(pred, x[ok])
+            log_kw[ok] = pred
+        s = np.where(ok, s, np.nan)
+        return log_kw, s
+
+    def apply_lab(self, pred: np.ndarray, x: np.ndarray) -> np.ndarray:
+        """Lab correction: ``a + b (pred - pivot) + h(x, pred)`` (see ``retpred.lab``)."""
+        lin = self.lab_linear_
+        out = lin["offset"] + lin["slope"] * (pred - lin["pivot"])
+        if self.lab_gbm_ is not None:
+            out = out + self.lab_gbm_.predict(np.column_stack([x, pred]))
+        return out
+
+    def _fixed_terms(self, arr: dict, ion: Ionisation) -> np.ndarray:
+        return np.log10(arr["kEB"] / self.reference.kEB) + ion_term(
+            ion, self.ion_drop_acid, self.ion_drop_base
+        )
+
+    # --- training --------------------------------------------------------------------
+    def fit(
+        self, solutes: Solutes, idx: np.ndarray, contexts: Sequence[SystemContext],
+        which: np.ndarray, log_kw_obs: np.ndarray, sample_weight: np.ndarray | None = None,
+    ) -> RetentionModel:
+        """Fit on observed ``log kw`` of rows (solute ``idx[i]`` on context ``which[i]``).
+
+        Ridge on the HSM-style terms plus linear descriptor main effects first (they keep
+        homologous series in order and extrapolate smoothly), then gradient boosting on
+        what is left. Returns ``self``.
+        """
+        arr = context_arrays(contexts, which)
+        ion = ionise(_take_sites(solutes.sites, idx), arr["ph"])
+        y = log_kw_obs - self._fixed_terms(arr, ion)
+        z = column_features(solutes, idx, arr, ion, self.reference)
+        x = solute_matrix(solutes, idx, arr["meoh"])
+        lin = np.column_stack([z, solutes.descriptors[idx]])
+        ridge = Ridge(alpha=self.ridge_alpha).fit(lin, y, sample_weight=sample_weight)
+        resid = y - ridge.predict(lin)
+        gbm = HistGradientBoostingRegressor(
+            max_iter=self.gbm_max_iter,
+            learning_rate=self.gbm_learning_rate,
+            max_leaf_nodes=31,
+            min_samples_leaf=20,
+            l2_regularization=1.0,
+            random_state=self.random_state,
+        ).fit(x, resid, sample_weight=sample_weight)
+        self.ridge_ = ridge
+        self.gbm_ = gbm
+        return self
+
+    # --- metadata ----------------------------------------------------------------------
+    def describe(self) -> dict:
+        return {
+            "format": MODEL_FORMAT,
+            "tool_version": __version__,
+            "descriptors": list(DESCRIPTOR_NAMES),
+            "fingerprint_bits": N_BITS,
+            "column_terms": list(COLUMN_TERM_NAMES),
+            **self.meta_,
+        }
+
+
+def _take_sites(sites: SiteTable, idx: np.ndarray) -> SiteTable:
+    return SiteTable(
+        pka=sites.pka[idx], kind=sites.kind[idx], group=[sites.group[i] for i in idx]
+    )
+
+
+def data_fingerprint(*parts: bytes | str) -> str:
+    """SHA-256 over the training inputs (for the model's metadata)."""
+    h = hashlib.sha256()
+    for p in parts:
+        h.update(p.encode() if isinstance(p, str) else p)
+    return h.hexdigest()
+
+
+def now_utc() -> str:
+    return datetime.now(UTC).strftime("%Y-%m-%dT%H:%M:%SZ")
+
+
+def to_json(obj) -> str:
+    return json.dumps(obj, sort_keys=True, indent=1, default=float)

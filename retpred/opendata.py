@@ -1,0 +1,201 @@
+"""Reader of the open reversed-phase retention data (``open-rp``, derived from RepoRT).
+
+The data are CC BY-SA 4.0 and are never copied into this repository: they are read from a
+path, ``$RETPRED_OPEN_RP`` or ``<checkout>/../shared/datasets/open-rp``.
+
+Each dataset (chromatographic system) becomes a :class:`OpenSystem` with its own
+:class:`~retpred.gradient.ElutionProgram`. Flaws of the data handled here:
+
+- unknown dead time, or one implausible against the column geometry (outside 0.33-3x the
+  geometric estimate ``0.5 L dc^2 / F``): the geometric estimate is used;
+- unknown flow: 0.3 mL/min for columns of 2.1 mm i.d. or less, else 1.0 mL/min
+  (common practice); with a known dead time only the dwell *time* depends on it;
+- unknown dwell volume (never recorded): the method module's typical UHPLC/HPLC value;
+- unknown pH: from the additives (formic/acetic/TFA -> acidic, ammonium hydroxide ->
+  basic, ammonium salts alone -> near neutral), else formic-acid conditions;
+- rows eluting at or before the dead time carry no retention information and are dropped;
+  duplicate (dataset, structure) rows are averaged;
+- systems without a gradient program, without a known organic modifier or with a
+  non-silica phase (graphitic carbon) are left out.
+"""
+
+from __future__ import annotations
+
+import math
+import os
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+
+from retpred.gradient import ElutionProgram, build_program
+from retpred.method import (
+    DEFAULT_DWELL_HPLC_ML,
+    DEFAULT_DWELL_UHPLC_ML,
+    DEFAULT_PH,
+    DEFAULT_TEMPERATURE_C,
+    HsmParameters,
+)
+
+ENV_VAR = "RETPRED_OPEN_RP"
+_PHASE_MAP = {
+    "C18": "C18",
+    "C8": "C8",
+    "phenyl": "phenyl",
+    "Phenyl": "phenyl",
+    "EP": "polar-embedded",
+    "CN": "CN",
+    "unknown": "C18",  # most unlabelled reversed-phase columns are C18 (the data: 290 of 324)
+}
+_MODIFIER_MAP = {"acn": "acetonitrile", "meoh": "methanol", "acn+iproh": "acetonitrile",
+                 "acn+meoh": "acetonitrile", "acn+acetone": "acetonitrile"}
+
+
+def find_open_data(path: str | os.PathLike | None = None) -> Path | None:
+    """The open-rp folder: ``path``, ``$RETPRED_OPEN_RP`` or ``../shared/datasets/open-rp``
+    next to the checkout; ``None`` when it is not there."""
+    candidates = []
+    if path is not None:
+        candidates.append(Path(path))
+    if os.environ.get(ENV_VAR):
+        candidates.append(Path(os.environ[ENV_VAR]))
+    here = Path(__file__).resolve().parent.parent
+    candidates.append(here.parent / "shared" / "datasets" / "open-rp")
+    candidates.append(Path.cwd().parent / "shared" / "datasets" / "open-rp")
+    for c in candidates:
+        if (c / "systems.tsv").is_file() and (c / "compounds.tsv.gz").is_file():
+            return c
+    return None
+
+
+@dataclass(frozen=True)
+class OpenSystem:
+    dataset: str
+    group: str  # source publication (DOI), else the dataset id
+    phase: str
+    organic: str
+    ph: float
+    temperature_c: float
+    hsm: HsmParameters | None
+    program: ElutionProgram
+    length_mm: float
+    inner_diameter_mm: float
+    particle_um: float
+    flow_ml_min: float
+
+
+def _num(x) -> float | None:
+    try:
+        v = float(x)
+    except (TypeError, ValueError):
+        return None
+    return v if math.isfinite(v) else None
+
+
+def ph_from_additives(additives: str | None) -> float:
+    """A pH guess from the additive list when none was reported (common practice values:
+    0.1 % formic acid ~2.7, 0.1 % acetic acid ~3.2, 0.1 % TFA ~2.0, ammonium hydroxide ~10,
+    ammonium bicarbonate ~7.8, ammonium acetate/formate alone ~6.5)."""
+    a = (additives or "").lower()
+    if "trifluoroacetic" in a:
+        return 2.0
+    if "nh4oh" in a and "formic" not in a and "acetic" not in a:
+        return 10.0
+    if "formic" in a:
+        return 2.7 if "nh4" not in a else 3.5
+    if "acetic" in a:
+        return 3.2 if "nh4" not in a else 4.8
+    if "nh4bicarb" in a:
+        return 7.8
+    if "nh4" in a:
+        return 6.5
+    return DEFAULT_PH
+
+
+def load_systems(root: Path) -> list[OpenSystem]:
+    """All usable systems of the open data, each with its elution program."""
+    sysdf = pd.read_csv(root / "systems.tsv", sep="\t", dtype={"dataset": str})
+    grad = pd.read_csv(root / "gradients.tsv", sep="\t", dtype={"dataset": str})
+    programs = {k: v.sort_values("t_min") for k, v in grad.groupby("dataset")}
+    out = []
+    for row in sysdf.itertuples(index=False):
+        phase = _PHASE_MAP.get(str(row.phase))
+        organic = _MODIFIER_MAP.get(str(row.modifier))
+        g = programs.get(row.dataset)
+        if phase is None or organic is None or g is None or len(g) == 0:
+            continue
+        length = _num(row.length_mm)
+        idm = _num(row.id_mm)
+        dp = _num(row.particle_um) or 3.0
+        flow = _num(row.flow_ml_min)
+        gflow = g["flow_ml_min"].to_numpy(dtype=float)
+        if flow is None:
+            finite = gflow[np.isfinite(gflow)]
+            flow = float(finite[0]) if finite.size else None
+        narrow = idm is None or idm <= 2.1
+        if flow is None:
+            flow = 0.3 if narrow else 1.0
+        gflow = np.where(np.isfinite(gflow) & (gflow > 0), gflow, flow)
+        t0_geo = None
+        if length and idm:
+            t0_geo = 0.5 * (length / 10.0) * (idm / 10.0) ** 2 / flow
+        t0 = _num(row.t0_min)
+        if t0 is None or t0 <= 0 or (t0_geo and not (t0_geo / 3 <= t0 <= 3 * t0_geo)):
+            t0 = t0_geo
+        if t0 is None:
+            continue
+        times = g["t_min"].to_numpy(dtype=float)
+        phi = g["phi_organic"].to_numpy(dtype=float)
+        if not np.all(np.isfinite(times)) or not np.all(np.isfinite(phi)):
+            continue
+        times = np.maximum.accumulate(times - times[0])
+        dwell = DEFAULT_DWELL_UHPLC_ML if (narrow or dp < 2.0) else DEFAULT_DWELL_HPLC_ML
+        try:
+            prog = build_program(times, phi, gflow, dead_time_min=t0, dwell_volume_ml=dwell)
+        except ValueError:
+            continue
+        ph = _num(row.ph_a)
+        if ph is None:
+            ph = ph_from_additives(row.additives if isinstance(row.additives, str) else None)
+        hsm = None
+        vals = [_num(getattr(row, f"hsm_{k}")) for k in ("H", "S", "A", "B", "C28", "C70", "kEB")]
+        if all(v is not None for v in vals):
+            hsm = HsmParameters(*vals)
+        doi = row.source_doi if isinstance(row.source_doi, str) and row.source_doi else None
+        out.append(
+            OpenSystem(
+                dataset=row.dataset,
+                group=doi or f"dataset:{row.dataset}",
+                phase=phase,
+                organic=organic,
+                ph=float(ph),
+                temperature_c=_num(row.temperature_c) or DEFAULT_TEMPERATURE_C,
+                hsm=hsm,
+                program=prog,
+                length_mm=length or 100.0,
+                inner_diameter_mm=idm or 2.1,
+                particle_um=dp,
+                flow_ml_min=float(flow),
+            )
+        )
+    return out
+
+
+def load_compounds(root: Path, datasets: set[str] | None = None) -> pd.DataFrame:
+    """Observed retention rows: dataset, smiles, inchikey, name, rt_min (duplicates averaged)."""
+    df = pd.read_csv(
+        root / "compounds.tsv.gz",
+        sep="\t",
+        dtype={"dataset": str},
+        usecols=["dataset", "name", "smiles", "inchikey", "rt_min"],
+    )
+    if datasets is not None:
+        df = df[df["dataset"].isin(datasets)]
+    df = df[np.isfinite(df["rt_min"]) & (df["rt_min"] > 0) & df["smiles"].notna()]
+    df = (
+        df.groupby(["dataset", "smiles"], as_index=False, sort=False)
+        .agg(name=("name", "first"), inchikey=("inchikey", "first"), rt_min=("rt_min", "mean"))
+    )
+    return df.reset_index(drop=True)
+

@@ -1,0 +1,211 @@
+"""The prediction path: analytes + method -> one table row per analyte.
+
+SMILES (or SDF molecules) -> standardised parents -> descriptors and ionisation at the
+method pH -> ``log kw``, ``S`` on the method's column -> optional calibration -> gradient
+engine -> peak widths (Knox/Wilke-Chang plates) -> neighbour resolution and co-elution risk.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Sequence
+from dataclasses import dataclass
+
+import numpy as np
+import pandas as pd
+
+from retpred.calibration import Calibration, coverage_warning, fit_calibration
+from retpred.chemistry import ionise, log_d
+from retpred.column import column_hsm, dead_time_min, plate_number
+from retpred.gradient import STATUS_OK, ElutionProgram, elute, log_kw_from_rt, program_from_method
+from retpred.method import Method
+from retpred.model import RetentionModel, Solutes, SystemContext, featurise
+from retpred.peaks import neighbour_pairs, peak_sigma_min
+
+#: Nominal coverage of the prediction interval [rt_low_min, rt_high_min].
+INTERVAL_COVERAGE = 0.90
+_Z90 = 1.6448536269514722  # standard normal 95th percentile
+
+OUTPUT_COLUMNS = (
+    "name", "smiles", "status", "rt_min", "rt_low_min", "rt_high_min", "elution_order",
+    "peak_width_min", "resolution_next", "coelution_risk", "coelutes_with", "logp", "logd",
+    "charge", "species", "log_kw", "s_lss", "standardised_smiles", "changes",
+)
+
+
+def system_context(method: Method, hsm=None) -> SystemContext:
+    return SystemContext(
+        organic=method.mobile_phase.organic,
+        ph=method.ph,
+        temperature_c=method.temperature_c,
+        hsm=hsm if hsm is not None else column_hsm(method.column),
+    )
+
+
+@dataclass
+class Prepared:
+    """Method-level state computed once per run."""
+
+    method: Method
+    model: RetentionModel
+    context: SystemContext
+    program: ElutionProgram
+    calibration: Calibration | None
+    t0_min: float
+
+
+def prepare(method: Method, model: RetentionModel, calibration: Calibration | None = None,
+            hsm=None) -> Prepared:
+    t0 = method.column.dead_time_min
+    if t0 is None:
+        t0 = dead_time_min(method.column, method.phi_program()[2][0])
+    return Prepared(
+        method=method, model=model, context=system_context(method, hsm),
+        program=program_from_method(method, dead_time_min=t0), calibration=calibration,
+        t0_min=t0,
+    )
+
+
+def _quantiles(model: RetentionModel, calibrated: bool) -> tuple[float, float]:
+    key = "calibrated" if calibrated else "zero_shot"
+    q = model.residual_quantiles_.get(key) or model.residual_quantiles_.get("zero_shot")
+    if not q:
+        return (-0.1, 0.1)
+    return float(q[0]), float(q[1])
+
+
+def retention(prep: Prepared, solutes: Solutes) -> tuple[np.ndarray, np.ndarray]:
+    """Calibrated ``(log kw, S)`` of a batch on the prepared method."""
+    log_kw, s = prep.model.retention_parameters(solutes, prep.context)
+    if prep.calibration is not None:
+        log_kw = prep.calibration.apply(log_kw)
+    return log_kw, s
+
+
+def predict_solutes(
+    prep: Prepared, solutes: Solutes, names: Sequence[str], read_errors=None
+) -> pd.DataFrame:
+    """Per-analyte rows (without the pair columns; see :func:`add_pairs`)."""
+    n = len(solutes)
+    log_kw, s = retention(prep, solutes)
+    el = elute(log_kw, s, prep.program)
+    q_lo, q_hi = _quantiles(prep.model, prep.calibration is not None)
+    # interval: quantiles of held-out errors in elution-composition units (log kw / S)
+    rt_lo = elute(log_kw + q_lo * s, s, prep.program).rt_min
+    rt_hi = elute(log_kw + q_hi * s, s, prep.program).rt_min
+
+    m = prep.method
+    flow0 = m.phi_program()[2][0]
+    plates = plate_number(
+        m.column, flow0, np.nan_to_num(el.phi_elution, nan=0.5), m.mobile_phase.organic,
+        m.temperature_c, np.nan_to_num(solutes.mw, nan=300.0),
+    )
+    sigma = peak_sigma_min(prep.t0_min, el.k_elution, plates)
+    ion = ionise(solutes.sites, m.ph)
+    logp = solutes.logp
+    logd = log_d(logp, ion)
+
+    status = []
+    for i in range(n):
+        parts = []
+        if read_errors is not None and read_errors[i]:
+            parts.append(str(read_errors[i]))
+        elif not solutes.usable[i]:
+            parts.append(solutes.batch.status[i])
+        else:
+            if solutes.batch.status[i] != "ok":
+                parts.append(solutes.batch.status[i])
+            if el.status[i] != STATUS_OK:
+                parts.append(str(el.status[i]))
+        status.append("; ".join(parts) if parts else "ok")
+    usable = solutes.usable & np.isfinite(el.rt_min)
+    if read_errors is not None:
+        usable &= np.array([not e for e in read_errors], dtype=bool)
+
+    def mask(a):
+        return np.where(usable, a, np.nan)
+
+    return pd.DataFrame(
+        {
+            "name": list(names),
+            "smiles": None,  # filled by caller with the input text
+            "status": status,
+            "rt_min": mask(el.rt_min),
+            "rt_low_min": mask(rt_lo),
+            "rt_high_min": mask(rt_hi),
+            "elution_order": pd.array([pd.NA] * n, dtype="Int64"),
+            "peak_width_min": mask(4.0 * sigma),
+            "resolution_next": np.nan,
+            "coelution_risk": np.nan,
+            "coelutes_with": "",
+            "logp": np.where(solutes.usable, logp, np.nan),
+            "logd": np.where(solutes.usable, logd, np.nan),
+            "charge": np.where(solutes.usable, ion.net_charge, np.nan),
+            "species": np.where(solutes.usable, ion.species, ""),
+            "log_kw": np.where(solutes.usable, log_kw, np.nan),
+            "s_lss": np.where(solutes.usable, s, np.nan),
+            "standardised_smiles": solutes.batch.smiles,
+            "changes": solutes.batch.changes,
+        }
+    )
+
+
+def add_pairs(table: pd.DataFrame, model: RetentionModel) -> pd.DataFrame:
+    """Elution order, resolution to the next peak and co-elution risk over the whole list.
+
+    The time-error sd of each analyte comes from its 90 % interval (half-width / 1.645);
+    neighbours' errors are correlated (``rho`` measured on held-out systems), which makes
+    their spacing more certain than the times themselves.
+    """
+    rt = table["rt_min"].to_numpy(dtype=float)
+    sigma = table["peak_width_min"].to_numpy(dtype=float) / 4.0
+    half = (table["rt_high_min"].to_numpy(float) - table["rt_low_min"].to_numpy(float)) / 2
+    sd = np.where(np.isfinite(half), half / _Z90, np.nan)
+    rho = float(model.residual_sd_.get("neighbour_rho", 0.0))
+    pairs = neighbour_pairs(rt, sigma, table["name"].astype(str).tolist(), sd, rho=rho)
+    out = table.copy()
+    order = np.full(len(out), -1)
+    order[pairs.order] = np.arange(1, pairs.order.size + 1)
+    out["elution_order"] = pd.array(np.where(order > 0, order, 0), dtype="Int64")
+    out.loc[order <= 0, "elution_order"] = pd.NA
+    out["resolution_next"] = pairs.resolution_next
+    out["coelution_risk"] = pairs.coelution_risk
+    out["coelutes_with"] = pairs.coelutes_with
+    return out
+
+
+def calibrate(
+    prep: Prepared, smiles: Sequence[str], rt_obs_min: np.ndarray, names: Sequence[str]
+) -> Calibration:
+    """Fit a :class:`Calibration` for ``prep``'s method from measured reference compounds."""
+    from retpred.method import method_summary
+
+    sol = featurise(list(smiles))
+    log_kw, s = prep.model.retention_parameters(sol, prep.context)
+    rt_obs = np.asarray(rt_obs_min, dtype=float)
+    obs = log_kw_from_rt(rt_obs, s, prep.program)
+
+    def rt_of(lk):
+        return elute(lk, s, prep.program).rt_min
+
+    return fit_calibration(
+        log_kw, obs, rt_obs, rt_of, names=list(names), method_summary=method_summary(prep.method)
+    )
+
+
+def predict_frame(
+    prep: Prepared, smiles: Sequence[str], names: Sequence[str] | None = None,
+    with_pairs: bool = True,
+) -> pd.DataFrame:
+    """Library entry point: predict a list of SMILES on a prepared method."""
+    smiles = list(smiles)
+    names = list(names) if names is not None else [f"row {i + 1}" for i in range(len(smiles))]
+    sol = featurise(smiles)
+    table = predict_solutes(prep, sol, names)
+    table["smiles"] = smiles
+    if with_pairs:
+        table = add_pairs(table, prep.model)
+    if prep.calibration is not None:
+        w = coverage_warning(prep.calibration, table["rt_min"].to_numpy(float))
+        if w:
+            table.attrs["warnings"] = [w]
+    return table

@@ -1,0 +1,136 @@
+"""What the user sees: the terminal table, the CSV and the simulated chromatogram."""
+
+from __future__ import annotations
+
+import math
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+from rich.console import Console
+from rich.table import Table
+
+from retpred.io import atomic_output, atomic_output_path
+from retpred.peaks import simulate_chromatogram
+
+CAUTION = (
+    "Predicted times are estimates: confirm them by injecting standards. Stay within the "
+    "column's and instrument's pressure, pH and temperature limits, and follow your local "
+    "safety rules and validated procedures."
+)
+
+
+def _fmt(x, digits=2) -> str:
+    if x is None or (isinstance(x, float) and not math.isfinite(x)) or x is pd.NA:
+        return "-"
+    try:
+        return f"{float(x):.{digits}f}"
+    except (TypeError, ValueError):
+        return str(x)
+
+
+def elution_table(table: pd.DataFrame, title: str, max_rows: int = 60) -> Table:
+    """A rich table in elution order, failed rows last."""
+    order = table["elution_order"].astype("Float64").fillna(np.inf).to_numpy(float)
+    idx = np.argsort(order, kind="stable")
+    t = Table(title=title, header_style="bold", show_lines=False, pad_edge=False)
+    for col in ("#", "name", "rt min", "90% interval", "width", "Rs next", "risk", "log D",
+                "species", "status"):
+        left = col in ("name", "species", "status")
+        t.add_column(col, justify="left" if left else "right", no_wrap=True,
+                     overflow="ellipsis", max_width=28 if col == "name" else None)
+    for shown, i in enumerate(idx):
+        if shown >= max_rows:
+            t.add_row("...", f"{len(idx) - max_rows} more rows in the CSV", *[""] * 8)
+            break
+        r = table.iloc[i]
+        risk = r["coelution_risk"]
+        flag = ""
+        if isinstance(risk, float) and math.isfinite(risk) and risk >= 0.5:
+            flag = "[bold red]"
+        elif isinstance(risk, float) and math.isfinite(risk) and risk >= 0.2:
+            flag = "[yellow]"
+        eo = r["elution_order"]
+        t.add_row(
+            "-" if eo is pd.NA else str(int(eo)),
+            str(r["name"]),
+            _fmt(r["rt_min"]),
+            f"{_fmt(r['rt_low_min'])}-{_fmt(r['rt_high_min'])}",
+            _fmt(r["peak_width_min"], 3),
+            _fmt(r["resolution_next"], 1),
+            f"{flag}{_fmt(risk)}",
+            _fmt(r["logd"], 1),
+            str(r["species"]),
+            str(r["status"])[:60],
+        )
+    return t
+
+
+def make_console() -> Console:
+    """A console at least 132 columns wide when output goes to a file or pipe."""
+    c = Console()
+    return c if c.is_terminal else Console(width=max(c.width, 132))
+
+
+def print_report(table: pd.DataFrame, title: str, notes: list[str], console: Console) -> None:
+    console.print(elution_table(table, title))
+    crit = table[table["coelution_risk"].astype(float) >= 0.5]
+    if len(crit):
+        pairs = sorted({tuple(sorted((str(a), str(b))))
+                        for a, bs in zip(crit["name"], crit["coelutes_with"], strict=True)
+                        for b in str(bs).split(";") if b})
+        console.print("[bold red]At risk of co-eluting:[/] " + ", ".join(f"{a} / {b}"
+                                                                    for a, b in pairs))
+    for n in notes:
+        console.print(f"[yellow]note:[/] {n}")
+    console.print(f"[dim]{CAUTION}[/]")
+
+
+def write_csv(table: pd.DataFrame, path: Path, *, force: bool, inputs=()) -> None:
+    with atomic_output(path, force=force, inputs=inputs) as fh:
+        table.to_csv(fh, index=False, float_format="%.4f", lineterminator="\n")
+
+
+def plot_chromatogram(
+    table: pd.DataFrame, path: Path, title: str, subtitle: str, *, force: bool, inputs=()
+) -> None:
+    """Simulated chromatogram: unit-area Gaussian peaks scaled to equal height, labelled,
+    critical pairs in red."""
+    import matplotlib
+
+    matplotlib.use("Agg")
+    import matplotlib.pyplot as plt
+
+    ok = table[np.isfinite(table["rt_min"].astype(float))]
+    rt = ok["rt_min"].to_numpy(float)
+    sigma = ok["peak_width_min"].to_numpy(float) / 4.0
+    risk = ok["coelution_risk"].astype(float).to_numpy()
+    # critical: at risk, or below Rs 1.5 with the next peak (then both peaks are marked)
+    rs_next = ok["resolution_next"].astype(float).to_numpy()
+    order = np.argsort(rt)
+    low = np.zeros(rt.size, bool)
+    for a, b in zip(order[:-1], order[1:], strict=True):
+        if np.isfinite(rs_next[a]) and rs_next[a] < 1.5:
+            low[a] = low[b] = True
+    end = float(np.nanmax(rt + 6 * sigma)) if rt.size else 1.0
+    grid = np.linspace(0.0, end * 1.05, 4000)
+    fig, ax = plt.subplots(figsize=(11, 4.8), dpi=110)
+    ax.plot(grid, simulate_chromatogram(rt, sigma, 1.0, grid), color="#1f4e79", lw=1.0)
+    for name, t, s, r, lo in zip(ok["name"].astype(str), rt, sigma, risk, low, strict=True):
+        crit = lo or (np.isfinite(r) and r >= 0.5)
+        color = "#c00000" if crit else "#333333"
+        if crit:
+            ax.axvspan(t - 2 * s, t + 2 * s, color="#ffcccc", alpha=0.6, lw=0)
+        ax.annotate(name[:18], (t, 1.02), rotation=90, fontsize=7, color=color,
+                    ha="center", va="bottom", annotation_clip=False)
+    ax.set_xlim(0, grid[-1])
+    ax.set_ylim(0, 1.45)
+    ax.set_xlabel("time (min)")
+    ax.set_ylabel("relative response (equal heights)")
+    ax.set_title(title, fontsize=10, loc="left")
+    ax.text(0.0, -0.2, subtitle + "\nSimulated from predicted times and widths; "
+            "confirm by injection.", transform=ax.transAxes, fontsize=7, va="top")
+    fig.tight_layout()
+    with atomic_output_path(path, force=force, inputs=inputs) as tmp:
+        fig.savefig(tmp, format="png")
+    plt.close(fig)

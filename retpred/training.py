@@ -1,0 +1,147 @@
+"""Training and validation on the open data (and on a lab's own data).
+
+Every observed time becomes ``log kw`` through the gradient engine with the system's own
+program (``log_kw_from_rt``); the model is fitted in that space. Validation leaves out
+whole source publications (``retention-physics.md`` section 8), never rows.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Sequence
+from dataclasses import dataclass
+
+import numpy as np
+import pandas as pd
+
+from retpred.column import class_hsm
+from retpred.gradient import ElutionProgram, elute, log_kw_from_rt
+from retpred.model import RetentionModel, Solutes, SystemContext, featurise, s_parameter
+from retpred.opendata import OpenSystem, load_compounds, load_systems
+
+#: Observed log kw outside this window are treated as data errors (k at phi=0 of 10^-1 ..
+#: 10^9 covers every small molecule on reversed phase; common practice).
+LOG_KW_WINDOW = (-1.0, 9.0)
+#: Rows with k below this at elution carry almost no information (eluted near t0).
+MIN_RT_OVER_T0 = 1.15
+
+
+@dataclass
+class TrainingSet:
+    """Rows of (solute index, system index, observed rt and log kw)."""
+
+    solutes: Solutes
+    systems: list[OpenSystem]
+    contexts: list[SystemContext]
+    solute_idx: np.ndarray
+    system_idx: np.ndarray
+    rt_min: np.ndarray
+    log_kw: np.ndarray
+    s: np.ndarray
+    smiles: list[str]
+
+    @property
+    def groups(self) -> np.ndarray:
+        return np.array([self.systems[i].group for i in self.system_idx])
+
+    def subset(self, mask: np.ndarray) -> TrainingSet:
+        return TrainingSet(
+            solutes=self.solutes, systems=self.systems, contexts=self.contexts,
+            solute_idx=self.solute_idx[mask], system_idx=self.system_idx[mask],
+            rt_min=self.rt_min[mask], log_kw=self.log_kw[mask], s=self.s[mask],
+            smiles=self.smiles,
+        )
+
+
+def context_of(system: OpenSystem) -> SystemContext:
+    return SystemContext(
+        organic=system.organic,
+        ph=system.ph,
+        temperature_c=system.temperature_c,
+        hsm=system.hsm if system.hsm is not None else class_hsm(system.phase),
+    )
+
+
+def build_training_set(
+    systems: Sequence[OpenSystem], rows: pd.DataFrame, solutes: Solutes | None = None,
+    smiles_index: dict[str, int] | None = None,
+) -> TrainingSet:
+    """Invert every observed time of ``rows`` (dataset, smiles, rt_min) into log kw."""
+    if solutes is None:
+        uniq = list(dict.fromkeys(rows["smiles"].tolist()))
+        solutes = featurise(uniq)
+        smiles_index = {s: i for i, s in enumerate(uniq)}
+    pos = {s.dataset: i for i, s in enumerate(systems)}
+    sol_all, sys_all, rt_all, lk_all, s_all = [], [], [], [], []
+    for ds, grp in rows.groupby("dataset", sort=True):
+        if ds not in pos:
+            continue
+        sysi = pos[ds]
+        prog = systems[sysi].program
+        sidx = np.array([smiles_index[s] for s in grp["smiles"]])
+        use = solutes.usable[sidx]
+        rt = grp["rt_min"].to_numpy(dtype=float)
+        use &= rt > MIN_RT_OVER_T0 * prog.dead_time_min
+        if not use.any():
+            continue
+        sidx, rt = sidx[use], rt[use]
+        s = s_parameter(solutes.mw[sidx])
+        lk = log_kw_from_rt(rt, s, prog)
+        ok = np.isfinite(lk) & (lk > LOG_KW_WINDOW[0]) & (lk < LOG_KW_WINDOW[1])
+        sol_all.append(sidx[ok])
+        sys_all.append(np.full(ok.sum(), sysi))
+        rt_all.append(rt[ok])
+        lk_all.append(lk[ok])
+        s_all.append(s[ok])
+    return TrainingSet(
+        solutes=solutes,
+        systems=list(systems),
+        contexts=[context_of(s) for s in systems],
+        solute_idx=np.concatenate(sol_all),
+        system_idx=np.concatenate(sys_all),
+        rt_min=np.concatenate(rt_all),
+        log_kw=np.concatenate(lk_all),
+        s=np.concatenate(s_all),
+        smiles=list(smiles_index),
+    )
+
+
+def load_open_training_set(root, datasets: set[str] | None = None) -> TrainingSet:
+    systems = load_systems(root)
+    if datasets is not None:
+        systems = [s for s in systems if s.dataset in datasets]
+    rows = load_compounds(root, {s.dataset for s in systems})
+    return build_training_set(systems, rows)
+
+
+def fit_model(ts: TrainingSet, mask: np.ndarray | None = None, **params) -> RetentionModel:
+    """Fit a model on the rows of ``ts`` selected by ``mask`` (all by default).
+
+    Rows are weighted so that every system counts about as much as sqrt of its size
+    (a 7,000-compound system must not drown the 30-compound ones).
+    """
+    sub = ts if mask is None else ts.subset(mask)
+    counts = np.bincount(sub.system_idx, minlength=len(ts.systems)).astype(float)
+    w = 1.0 / np.sqrt(np.maximum(counts[sub.system_idx], 1.0))
+    w *= len(w) / w.sum()
+    ref = class_hsm("C18")
+    model = RetentionModel(reference=ref, **params)
+    return model.fit(
+        ts.solutes, sub.solute_idx, ts.contexts, sub.system_idx, sub.log_kw, sample_weight=w
+    )
+
+
+def predict_rows(model: RetentionModel, ts: TrainingSet, mask: np.ndarray | None = None):
+    """Predicted (log kw, S, rt_min) of rows of ``ts`` on their own systems."""
+    sub = ts if mask is None else ts.subset(mask)
+    lk, s = model.retention_parameters(
+        ts.solutes, ts.contexts, which=sub.system_idx, idx=sub.solute_idx
+    )
+    rt = np.full(lk.size, np.nan)
+    for sysi in np.unique(sub.system_idx):
+        m = sub.system_idx == sysi
+        rt[m] = elute(lk[m], s[m], ts.systems[sysi].program).rt_min
+    return lk, s, rt
+
+
+def elute_on(program: ElutionProgram, log_kw: np.ndarray, s: np.ndarray) -> np.ndarray:
+    return elute(log_kw, s, program).rt_min

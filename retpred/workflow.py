@@ -1,0 +1,290 @@
+"""Command workflows: read inputs, call the library, write outputs. The CLI calls these."""
+
+from __future__ import annotations
+
+import dataclasses
+from collections.abc import Iterator, Sequence
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+from rich.console import Console
+from rich.progress import BarColumn, Progress, TextColumn, TimeElapsedColumn
+from rich.table import Table
+
+from retpred.calibration import Calibration
+from retpred.errors import InputError
+from retpred.io import AnalyteChunk, _check_target, atomic_output, iter_analytes, read_calibrants
+from retpred.method import PHASE_CLASSES, Method, load_method, method_summary
+from retpred.model import RetentionModel, featurise
+from retpred.modelfile import load_model
+from retpred.predict import (
+    OUTPUT_COLUMNS,
+    Prepared,
+    add_pairs,
+    calibrate,
+    predict_solutes,
+    prepare,
+)
+from retpred.report import make_console, plot_chromatogram, print_report, write_csv
+
+
+def check_outputs(outputs: Sequence[Path | None], inputs: Sequence[Path | None], force: bool):
+    """Refuse bad output paths before any work is done (they are checked again on write)."""
+    seen = set()
+    for o in outputs:
+        if o is None:
+            continue
+        _check_target(o, force, [i for i in inputs if i is not None])
+        key = str(Path(o).resolve())
+        if key in seen:
+            raise InputError("the same file is given for two outputs", path=str(o))
+        seen.add(key)
+
+
+def _solutes_of(chunk: AnalyteChunk):
+    if chunk.mols is not None:
+        return featurise(mols=chunk.mols)
+    return featurise(smiles=[s if e is None else "" for s, e in
+                             zip(chunk.smiles, chunk.error, strict=True)])
+
+
+def predict_chunk(prep: Prepared, chunk: AnalyteChunk) -> pd.DataFrame:
+    """Rows of one chunk (pair columns are added once over the whole list)."""
+    sol = _solutes_of(chunk)
+    table = predict_solutes(prep, sol, chunk.name, read_errors=chunk.error)
+    table["smiles"] = chunk.smiles
+    for col, values in chunk.extra.items():
+        name = col if col not in table.columns else f"input_{col}"
+        table[name] = values
+    table.insert(0, "line", chunk.line)
+    return table
+
+
+def _predict_chunks(prep: Prepared, chunks: Iterator[AnalyteChunk], jobs: int):
+    if jobs <= 1:
+        for chunk in chunks:
+            yield predict_chunk(prep, chunk)
+        return
+    from joblib import Parallel, delayed
+
+    yield from Parallel(n_jobs=jobs, return_as="generator")(
+        delayed(predict_chunk)(prep, c) for c in chunks
+    )
+
+
+def load_calibration_file(path: Path) -> Calibration:
+    try:
+        text = Path(path).read_text(encoding="utf-8")
+    except FileNotFoundError:
+        raise InputError("calibration file not found", path=str(path)) from None
+    except (OSError, UnicodeDecodeError) as exc:
+        raise InputError(f"cannot read calibration file: {exc}", path=str(path)) from None
+    return Calibration.from_json(text, path=str(path))
+
+
+def prepared_run(
+    method_path: Path, model_path: Path | None, calibrants: Path | None = None,
+    calibration: Path | None = None,
+) -> tuple[Method, RetentionModel, Prepared]:
+    method = load_method(method_path)
+    model = load_model(model_path)
+    if calibrants is not None and calibration is not None:
+        raise InputError("give --calibrants or --calibration, not both")
+    prep = prepare(method, model)
+    if calibrants is not None:
+        cal_df = read_calibrants(calibrants)
+        cal = calibrate(prep, cal_df["smiles"], cal_df["rt_min"].to_numpy(float),
+                        cal_df["name"].tolist())
+        prep = dataclasses.replace(prep, calibration=cal)
+    elif calibration is not None:
+        prep = dataclasses.replace(prep, calibration=load_calibration_file(calibration))
+    return method, model, prep
+
+
+def predict_table(
+    prep: Prepared, analytes: Path, *, chunk_size: int = 5000, jobs: int = 1,
+    progress: bool = False,
+) -> pd.DataFrame:
+    """All rows of ``analytes`` predicted on ``prep``, with order and pair columns."""
+    chunks = iter_analytes(analytes, chunk_size=chunk_size)
+    parts = []
+    if progress:
+        with Progress(TextColumn("predicting"), BarColumn(), TextColumn("{task.completed} rows"),
+                      TimeElapsedColumn(), console=Console(stderr=True), transient=True) as bar:
+            task = bar.add_task("predict", total=None)
+            for part in _predict_chunks(prep, chunks, jobs):
+                parts.append(part)
+                bar.advance(task, len(part))
+    else:
+        parts = list(_predict_chunks(prep, chunks, jobs))
+    table = pd.concat(parts, ignore_index=True)
+    table = add_pairs(table, prep.model)
+    lead = ["line", *OUTPUT_COLUMNS]
+    return table[lead + [c for c in table.columns if c not in lead]]
+
+
+def run_predict(
+    analytes: Path, method_path: Path, *, calibrants=None, calibration=None, model=None,
+    out=None, plot=None, jobs: int = 1, chunk_size: int = 5000, force: bool = False,
+    quiet: bool = False,
+) -> pd.DataFrame:
+    inputs = [analytes, method_path, calibrants, calibration, model]
+    check_outputs([out, plot], inputs, force)
+    method, mdl, prep = prepared_run(method_path, model, calibrants, calibration)
+    table = predict_table(prep, analytes, chunk_size=chunk_size, jobs=jobs, progress=not quiet)
+    notes = list(method.warnings)
+    if prep.calibration is not None:
+        cal = prep.calibration
+        notes.append(
+            f"calibrated with {cal.n_calibrants} reference compound(s), correction '{cal.kind}'"
+            + (f", leave-one-out median error {cal.loo_median_abs_error_min:.2f} min"
+               if np.isfinite(cal.loo_median_abs_error_min) else "")
+        )
+        notes.extend(cal.warnings)
+        from retpred.calibration import coverage_warning
+
+        w = coverage_warning(cal, table["rt_min"].to_numpy(float))
+        if w:
+            notes.append(w)
+    else:
+        notes.append("not calibrated: times are zero-shot estimates for this system "
+                     "(give --calibrants with a few measured standards to correct them)")
+    if out is not None:
+        write_csv(table, out, force=force, inputs=inputs)
+    if plot is not None:
+        plot_chromatogram(table, plot, title=f"retpred: {Path(analytes).name}",
+                          subtitle=method_summary(method), force=force, inputs=inputs)
+    if not quiet:
+        console = make_console()
+        print_report(table, method_summary(method), notes, console)
+        if out is not None:
+            console.print(f"wrote {out}")
+        if plot is not None:
+            console.print(f"wrote {plot}")
+    return table
+
+
+# --- column comparison ----------------------------------------------------------------------
+
+def phase_summary(table: pd.DataFrame, rs_target: float = 1.5) -> dict:
+    ok = table[np.isfinite(table["rt_min"].astype(float))].sort_values("rt_min")
+    rs = ok["resolution_next"].astype(float).to_numpy()
+    names = ok["name"].astype(str).tolist()
+    finite = np.isfinite(rs)
+    crit = [f"{names[i]} / {names[i + 1]}" for i in range(len(rs))
+            if finite[i] and rs[i] < rs_target]
+    min_rs = float(np.nanmin(rs)) if finite.any() else float("nan")
+    imin = int(np.nanargmin(np.where(finite, rs, np.inf))) if finite.any() else -1
+    return {
+        "order": names,
+        "critical_pairs": crit,
+        "min_resolution": min_rs,
+        "worst_pair": f"{names[imin]} / {names[imin + 1]}" if imin >= 0 else "",
+        "n_unresolved": len(crit),
+        "last_rt_min": float(ok["rt_min"].max()) if len(ok) else float("nan"),
+        "max_risk": float(np.nanmax(ok["coelution_risk"].astype(float)))
+        if len(ok) else float("nan"),
+    }
+
+
+def parse_phases(phases: str | None) -> list[str]:
+    if not phases:
+        return list(PHASE_CLASSES)
+    out = []
+    lookup = {p.lower(): p for p in PHASE_CLASSES}
+    for raw in phases.split(","):
+        p = raw.strip()
+        if p.lower() not in lookup:
+            raise InputError(f"unknown phase '{p}'; built-in classes: {', '.join(PHASE_CLASSES)}",
+                             field="--phases")
+        out.append(lookup[p.lower()])
+    return out
+
+
+def compare_columns(method: Method, model: RetentionModel, smiles: list[str], names: list[str],
+                    phases: list[str]) -> tuple[pd.DataFrame, dict[str, pd.DataFrame]]:
+    """Predict the same list on each phase class (class-median HSM parameters)."""
+    sol = featurise(smiles)
+    rows, tables = [], {}
+    for phase in phases:
+        col = dataclasses.replace(method.column, phase=phase, hsm=None)
+        m = dataclasses.replace(method, column=col)
+        prep = prepare(m, model)
+        t = predict_solutes(prep, sol, names)
+        t["smiles"] = smiles
+        t = add_pairs(t, model)
+        tables[phase] = t
+        s = phase_summary(t)
+        rows.append({"phase": phase, **s})
+    # Verdict: fewest unresolved pairs, then the largest smallest resolution, then shorter run.
+    summary = pd.DataFrame(rows).sort_values(
+        ["n_unresolved", "min_resolution", "last_rt_min"], ascending=[True, False, True]
+    ).reset_index(drop=True)
+    summary.insert(0, "rank", np.arange(1, len(summary) + 1))
+    return summary, tables
+
+
+def run_columns(analytes, method_path, *, phases=None, model=None, out=None, force=False,
+                quiet=False):
+    inputs = [analytes, method_path, model]
+    check_outputs([out], inputs, force)
+    method = load_method(method_path)
+    mdl = load_model(model)
+    smiles, names = [], []
+    for chunk in iter_analytes(analytes):
+        smiles.extend(s if e is None else "" for s, e in zip(chunk.smiles, chunk.error,
+                                                            strict=True))
+        names.extend(chunk.name)
+    summary, _ = compare_columns(method, mdl, smiles, names, parse_phases(phases))
+    if out is not None:
+        flat = summary.copy()
+        flat["order"] = flat["order"].map(lambda x: " > ".join(x))
+        flat["critical_pairs"] = flat["critical_pairs"].map(lambda x: "; ".join(x))
+        write_csv(flat, out, force=force, inputs=inputs)
+    if not quiet:
+        console = make_console()
+        t = Table(title="Column phases on the same method (class-median HSM parameters)")
+        for c in ("rank", "phase", "smallest Rs", "worst pair", "pairs Rs<1.5", "last peak min"):
+            t.add_column(c)
+        for r in summary.itertuples():
+            t.add_row(str(r.rank), r.phase, f"{r.min_resolution:.2f}", r.worst_pair,
+                      str(r.n_unresolved), f"{r.last_rt_min:.2f}")
+        console.print(t)
+        best = summary.iloc[0]
+        verdict = (f"{best.phase} separates this list best"
+                   + (" and resolves all pairs" if best.n_unresolved == 0 else
+                      f" but leaves {best.n_unresolved} pair(s) below Rs 1.5"))
+        console.print(f"[bold]verdict:[/] {verdict} (smallest Rs {best.min_resolution:.2f}).")
+    return summary
+
+
+# --- calibration and training ------------------------------------------------------------------
+
+def run_calibrate(calibrants, method_path, *, out, model=None, force=False, quiet=False):
+    inputs = [calibrants, method_path, model]
+    check_outputs([out], inputs, force)
+    method = load_method(method_path)
+    mdl = load_model(model)
+    prep = prepare(method, mdl)
+    cal_df = read_calibrants(calibrants)
+    cal = calibrate(prep, cal_df["smiles"], cal_df["rt_min"].to_numpy(float),
+                    cal_df["name"].tolist())
+    with atomic_output(out, force=force, inputs=inputs) as fh:
+        fh.write(cal.to_json())
+    if not quiet:
+        c = make_console()
+        c.print(f"calibration '{cal.kind}' from {cal.n_calibrants} compound(s) on "
+                f"{method_summary(method)}")
+        for kind, e in cal.loo_errors_min.items():
+            c.print(f"  leave-one-out median |error| with '{kind}': {e:.3f} min")
+        for w in cal.warnings:
+            c.print(f"[yellow]warning:[/] {w}")
+        c.print(f"wrote {out}")
+    return cal
+
+
+def run_train(data, methods, *, out, model=None, force=False, quiet=False):
+    from retpred.lab import train_lab_model
+
+    return train_lab_model(data, methods, out=out, base_model=model, force=force, quiet=quiet)

@@ -1,0 +1,196 @@
+"""The commands as a chromatographer meets them (in-process with typer's CliRunner).
+
+External references: the open data (a real system's measured times, RepoRT-derived,
+CC BY-SA 4.0) for the calibrated prediction; the pickle protocol (Python docs: unpickling
+runs ``__reduce__`` callables) for the unsafe-model check.
+"""
+
+from __future__ import annotations
+
+import csv
+import hashlib
+import io
+import pickle
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+import pytest
+from typer.testing import CliRunner
+
+from retpred.cli import app
+
+runner = CliRunner()
+
+
+def run(*args):
+    return runner.invoke(app, [str(a) for a in args], catch_exceptions=False)
+
+
+@pytest.fixture()
+def analytes(tmp_path) -> Path:
+    p = tmp_path / "analytes.csv"
+    p.write_text(
+        "name,smiles,lot\n"
+        "caffeine,Cn1cnc2c1c(=O)n(C)c(=O)n2C,A1\n"
+        "broken,C1CC(,A2\n"
+        "toluene,Cc1ccccc1,A3\n"
+        "ibuprofen,CC(C)Cc1ccc(C(C)C(=O)O)cc1,A4\n",
+        encoding="utf-8",
+    )
+    return p
+
+
+def test_demo_runs_and_names_every_analyte(shipped_model, demo_dir):
+    res = run("demo")
+    assert res.exit_code == 0, res.output
+    names = pd.read_csv(demo_dir / "analytes.csv")["name"]
+    for n in names:
+        assert n[:20] in res.output
+    assert "verdict" in res.output
+    assert "confirm" in res.output  # the caution is shown
+
+
+def test_predict_bad_row_reported_rest_predicted(shipped_model, analytes, demo_dir, tmp_path):
+    out = tmp_path / "out.csv"
+    res = run("predict", analytes, "--method", demo_dir / "method.toml", "--out", out, "-q")
+    assert res.exit_code == 0, res.output
+    df = pd.read_csv(out)
+    assert df["name"].tolist() == ["caffeine", "broken", "toluene", "ibuprofen"]  # input order
+    for col in ("name", "smiles", "status", "rt_min", "rt_low_min", "rt_high_min",
+                "elution_order", "peak_width_min", "resolution_next", "coelution_risk",
+                "coelutes_with", "logp", "logd", "charge", "species", "lot"):
+        assert col in df.columns, col
+    assert "unparseable" in df.loc[1, "status"] and np.isnan(df.loc[1, "rt_min"])
+    ok = df.drop(index=1)
+    assert (ok["status"] == "ok").all()
+    assert np.all(ok["rt_low_min"] <= ok["rt_min"]) and np.all(ok["rt_min"] <= ok["rt_high_min"])
+    # caffeine (log P ~ -0.1) before toluene (2.7): polar first (common practice)
+    assert ok.set_index("name").loc["caffeine", "rt_min"] < ok.set_index("name").loc[
+        "toluene", "rt_min"]
+    assert df["lot"].tolist() == ["A1", "A2", "A3", "A4"]
+
+
+def test_output_is_deterministic(shipped_model, analytes, demo_dir, tmp_path):
+    a, b = tmp_path / "a.csv", tmp_path / "b.csv"
+    for p in (a, b):
+        assert run("predict", analytes, "-m", demo_dir / "method.toml", "--out", p,
+                   "-q").exit_code == 0
+    assert hashlib.sha256(a.read_bytes()).digest() == hashlib.sha256(b.read_bytes()).digest()
+
+
+def test_refuses_to_overwrite(shipped_model, analytes, demo_dir, tmp_path):
+    res = run("predict", analytes, "-m", demo_dir / "method.toml", "--out", analytes, "-q")
+    assert res.exit_code == 2 and "input" in res.output
+    out = tmp_path / "exists.csv"
+    out.write_text("keep me")
+    res = run("predict", analytes, "-m", demo_dir / "method.toml", "--out", out, "-q")
+    assert res.exit_code == 2 and "--force" in res.output
+    assert out.read_text() == "keep me"
+    res = run("predict", analytes, "-m", demo_dir / "method.toml", "--out", out, "-q", "--force")
+    assert res.exit_code == 0 and out.read_text() != "keep me"
+
+
+def test_bad_method_one_line_exit_2(shipped_model, analytes, tmp_path):
+    m = tmp_path / "bad.toml"
+    m.write_text(
+        '[column]\nphase="C18"\nlength_mm=100\ninner_diameter_mm=2.1\nparticle_um=1.7\n'
+        '[mobile_phase]\norganic="acetonitrile"\n'
+        "[gradient]\nflow_ml_min=-0.4\nprogram=[[0,5],[10,95]]\n"
+    )
+    res = run("predict", analytes, "-m", m)
+    assert res.exit_code == 2
+    assert "Traceback" not in res.output
+    line = res.output.strip().splitlines()[-1]
+    assert "bad.toml" in line and "flow_ml_min" in line
+
+
+class _Payload:
+    def __init__(self, marker: Path):
+        self.marker = marker
+
+    def __reduce__(self):  # runs on unpickling (Python pickle documentation)
+        return (Path.write_text, (self.marker, "pwned"))
+
+
+def test_crafted_pickle_model_is_refused_and_never_runs(analytes, demo_dir, tmp_path):
+    marker = tmp_path / "marker.txt"
+    evil = tmp_path / "evil.skops"
+    evil.write_bytes(pickle.dumps(_Payload(marker)))
+    # sanity: this file really would run code if it were unpickled
+    pickle.loads(evil.read_bytes())
+    assert marker.read_text() == "pwned"
+    marker.unlink()
+    res = run("predict", analytes, "-m", demo_dir / "method.toml", "--model", evil, "-q")
+    assert res.exit_code == 2
+    assert "refused" in res.output or "not a retpred model" in res.output
+    assert not marker.exists()
+
+
+def _system_method(system, path: Path):
+    """Write an open-data system's own method as a TOML method file."""
+    prog = system.program
+    rows = ", ".join(
+        f"[{t:.6g}, {100 * p:.6g}, {f:.6g}]"
+        for t, p, f in zip(prog.pump_time_min, _pump_phi(system), prog.pump_flow_ml_min,
+                           strict=True)
+    )
+    path.write_text(
+        f'[column]\nphase = "{system.phase}"\nlength_mm = {system.length_mm}\n'
+        f"inner_diameter_mm = {system.inner_diameter_mm}\nparticle_um = {system.particle_um}\n"
+        f"dead_time_min = {prog.dead_time_min:.6g}\n"
+        f'[mobile_phase]\norganic = "{system.organic}"\nph = {system.ph}\n'
+        f"temperature_c = {system.temperature_c}\n"
+        f"[gradient]\nflow_ml_min = {system.flow_ml_min}\n"
+        f"dwell_volume_ml = {prog.dwell_volume_ml}\nprogram = [{rows}]\n"
+    )
+
+
+def _pump_phi(system):
+    # pump composition at the pump breakpoints (inlet profile shifted back by the dwell)
+    prog = system.program
+    return np.interp(prog.pump_volume_ml + prog.dwell_volume_ml, prog.volume_ml, prog.phi)
+
+
+@pytest.mark.opendata
+def test_calibrants_improve_a_real_system(shipped_model, open_data, open_systems, tmp_path):
+    """Dataset 0002 (RepoRT-derived open data): 10 measured calibrants must bring the
+    prediction of the other compounds closer to their measured times."""
+    from retpred.opendata import load_compounds
+
+    system = next(s for s in open_systems if s.dataset == "0002")
+    rows = load_compounds(open_data, {"0002"}).sample(n=70, random_state=0)
+    method = tmp_path / "m.toml"
+    _system_method(system, method)
+    cal, rest = rows.iloc[:10], rows.iloc[10:]
+    cal_p, rest_p = tmp_path / "cal.csv", tmp_path / "rest.csv"
+    cal[["name", "smiles", "rt_min"]].to_csv(cal_p, index=False)
+    rest[["name", "smiles"]].to_csv(rest_p, index=False)
+    z, c = tmp_path / "z.csv", tmp_path / "c.csv"
+    assert run("predict", rest_p, "-m", method, "--out", z, "-q").exit_code == 0
+    res = run("predict", rest_p, "-m", method, "--calibrants", cal_p, "--out", c, "-q")
+    assert res.exit_code == 0, res.output
+    obs = rest["rt_min"].to_numpy()
+    err_z = np.nanmedian(np.abs(pd.read_csv(z)["rt_min"].to_numpy() - obs))
+    err_c = np.nanmedian(np.abs(pd.read_csv(c)["rt_min"].to_numpy() - obs))
+    assert err_c < err_z
+
+
+def test_calibrate_writes_file_used_by_predict(shipped_model, demo_dir, analytes, tmp_path):
+    cal = tmp_path / "cal.csv"
+    buf = io.StringIO()
+    w = csv.writer(buf)
+    w.writerow(["name", "smiles", "rt_min"])
+    # invented standards (demo-only data: checks the plumbing, not accuracy)
+    w.writerows([["caffeine", "Cn1cnc2c1c(=O)n(C)c(=O)n2C", 1.9],
+                 ["toluene", "Cc1ccccc1", 7.1], ["naphthalene", "c1ccc2ccccc2c1", 7.9]])
+    cal.write_text(buf.getvalue())
+    out = tmp_path / "sys.cal"
+    res = run("calibrate", cal, "-m", demo_dir / "method.toml", "--out", out)
+    assert res.exit_code == 0, res.output
+    a, b = tmp_path / "a.csv", tmp_path / "b.csv"
+    assert run("predict", analytes, "-m", demo_dir / "method.toml", "--calibration", out,
+               "--out", a, "-q").exit_code == 0
+    assert run("predict", analytes, "-m", demo_dir / "method.toml", "--calibrants", cal,
+               "--out", b, "-q").exit_code == 0
+    assert a.read_bytes() == b.read_bytes()
