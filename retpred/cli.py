@@ -83,6 +83,9 @@ def predict(
     plot: Annotated[Path | None, typer.Option(help="Write a simulated chromatogram PNG.")] = None,
     jobs: Annotated[int, typer.Option(min=1, help="Worker processes.")] = 1,
     chunk_size: Annotated[int, typer.Option(min=100, help="Rows per streamed chunk.")] = 5000,
+    scheduler: Annotated[
+        str | None, typer.Option(help="Dask scheduler address for a cluster run.")
+    ] = None,
     force: ForceOpt = False,
     quiet: QuietOpt = False,
 ) -> None:
@@ -94,6 +97,7 @@ def predict(
         workflow.run_predict(
             analytes, method, calibrants=calibrants, calibration=calibration, model=model,
             out=out, plot=plot, jobs=jobs, chunk_size=chunk_size, force=force, quiet=quiet,
+            scheduler=scheduler,
         )
 
     _run(body)
@@ -142,6 +146,39 @@ def columns(
 
         workflow.run_columns(analytes, method, phases=phases, model=model, out=out,
                              force=force, quiet=quiet)
+
+    _run(body)
+
+
+@app.command()
+def scan(
+    analytes: Annotated[Path, typer.Argument(help="CSV/TSV with a smiles column, .smi or .sdf")],
+    method: MethodOpt,
+    ph: Annotated[
+        str | None, typer.Option(help="pH range start:stop:step, e.g. 2:8:0.1")
+    ] = None,
+    gradient_time: Annotated[
+        str | None, typer.Option(help="Main ramp duration range in min, e.g. 5:60:5")
+    ] = None,
+    phases: Annotated[
+        str | None, typer.Option(help="With --ph: also scan these phase classes ('all' or list)")
+    ] = None,
+    rs_target: Annotated[float, typer.Option(min=0.1, help="Target smallest resolution.")] = 1.5,
+    model: ModelOpt = None,
+    out: Annotated[Path | None, typer.Option(help="Long CSV: each analyte at each point.")] = None,
+    summary_out: Annotated[Path | None, typer.Option(help="CSV: one row per scan point.")] = None,
+    plot: Annotated[Path | None, typer.Option(help="Resolution map PNG.")] = None,
+    force: ForceOpt = False,
+    quiet: QuietOpt = False,
+) -> None:
+    """Scan pH or gradient time: resolution map, best setting, robust window, pressure."""
+
+    def body():
+        from retpred.scan import run_scan
+
+        run_scan(analytes, method, ph=ph, gradient_time=gradient_time, phases=phases,
+                 rs_target=rs_target, model=model, out=out, summary_out=summary_out, plot=plot,
+                 force=force, quiet=quiet)
 
     _run(body)
 

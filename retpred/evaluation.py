@@ -255,3 +255,105 @@ def calibrated_residual_quantiles(ts: TrainingSet, fp: FoldPredictions, q=(0.05,
     a, b = np.concatenate(pairs_a), np.concatenate(pairs_b)
     rho = float(np.corrcoef(a, b)[0, 1]) if a.size > 3 else 0.0
     return [float(v) for v in np.quantile(r, q)], rho
+
+
+def _plates_for(system, phi_e, mw):
+    from retpred.column import plate_number
+    from retpred.method import Column
+
+    col = Column(phase=system.phase, length_mm=system.length_mm,
+                 inner_diameter_mm=system.inner_diameter_mm, particle_um=system.particle_um,
+                 dead_time_min=system.program.dead_time_min)
+    return plate_number(col, system.flow_ml_min, np.nan_to_num(phi_e, nan=0.5),
+                        system.organic, system.temperature_c, np.nan_to_num(mw, nan=300.0))
+
+
+def coelution_pairs(ts: TrainingSet, fp: FoldPredictions, q_phi: tuple[float, float],
+                    rho: float, calibrated: bool = True, seed: int = 2,
+                    rs_threshold: float = 1.5) -> pd.DataFrame:
+    """Predicted neighbour pairs on left-out systems with their predicted unresolved
+    probability and whether the measured times were unresolved (Rs < threshold with the
+    predicted peak widths). The error model is the one ``predict`` uses: 90 % interval from
+    the phi-space quantiles, sd = half-width / 1.645, neighbour correlation ``rho``."""
+    from retpred.peaks import peak_sigma_min, unresolved_probability
+
+    rng = np.random.default_rng(seed)
+    out = []
+    for sysi in np.unique(ts.system_idx):
+        m = np.flatnonzero(ts.system_idx == sysi)
+        if m.size < MIN_SYSTEM_SIZE:
+            continue
+        system = ts.systems[sysi]
+        prog = system.program
+        s = ts.s[m]
+        pred = fp.log_kw[m]
+        keep = np.arange(m.size)
+        if calibrated:
+            pick = rng.choice(m.size, N_CALIBRANTS, replace=False)
+            pred = calibrate_on(pred, ts.log_kw[m], ts.rt_min[m], s, prog, pick).apply(pred)
+            keep = np.setdiff1d(keep, pick)
+        el = elute(pred[keep], s[keep], prog)
+        lo = elute(pred[keep] + q_phi[0] * s[keep], s[keep], prog).rt_min
+        hi = elute(pred[keep] + q_phi[1] * s[keep], s[keep], prog).rt_min
+        mw = ts.solutes.mw[ts.solute_idx[m][keep]]
+        sigma = peak_sigma_min(prog.dead_time_min, el.k_elution,
+                               _plates_for(system, el.phi_elution, mw))
+        sd = (hi - lo) / 2 / 1.6448536269514722
+        obs = ts.rt_min[m][keep]
+        rt = el.rt_min
+        ok = np.flatnonzero(np.isfinite(rt) & np.isfinite(sigma) & np.isfinite(sd))
+        order = ok[np.argsort(rt[ok], kind="stable")]
+        a, b = order[:-1], order[1:]
+        pair_sd = np.sqrt(np.maximum(sd[a] ** 2 + sd[b] ** 2 - 2 * rho * sd[a] * sd[b], 0))
+        p = unresolved_probability(rt[b] - rt[a], sigma[a], sigma[b], pair_sd, rs_threshold)
+        w = 2 * rs_threshold * (sigma[a] + sigma[b])
+        out.append(pd.DataFrame({"dataset": system.dataset, "risk": p,
+                                 "unresolved": np.abs(obs[b] - obs[a]) < w}))
+    return pd.concat(out, ignore_index=True)
+
+
+def risk_calibration_table(pairs: pd.DataFrame, edges=(0, .05, .1, .2, .3, .4, .5, .6, .7, .8,
+                                                        .9, 1.0001)) -> pd.DataFrame:
+    """Mean predicted risk against the observed unresolved fraction, per risk bin."""
+    bins = pd.cut(pairs["risk"], list(edges), right=False)
+    g = pairs.groupby(bins, observed=True)
+    return pd.DataFrame({"n_pairs": g.size(), "mean_risk": g["risk"].mean(),
+                         "observed_unresolved": g["unresolved"].mean()}).reset_index()
+
+
+def ph_shift_agreement(ts: TrainingSet, fp: FoldPredictions, min_shift_min: float = 0.5):
+    """Sign agreement of predicted and observed pH shifts across the open data's pH series:
+    systems of one source with the same column, modifier, program and flow but another
+    pH. Returns (fraction agreeing, number of compound shifts over ``min_shift_min``)."""
+    def key(sy):
+        p = sy.program
+        return (sy.group, sy.phase, sy.organic, round(sy.length_mm, 1),
+                tuple(np.round(p.pump_time_min, 2)), tuple(np.round(p.phi, 3)),
+                round(float(p.pump_flow_ml_min[0]), 3))
+
+    groups: dict = {}
+    for i, sy in enumerate(ts.systems):
+        groups.setdefault(key(sy), []).append(i)
+    agree = total = 0
+    for members in groups.values():
+        phs = sorted({ts.systems[i].ph for i in members})
+        if len(phs) < 2:
+            continue
+        for i in members:
+            for j in members:
+                if not ts.systems[i].ph < ts.systems[j].ph:
+                    continue
+                mi = np.flatnonzero(ts.system_idx == i)
+                mj = np.flatnonzero(ts.system_idx == j)
+                common, ia, ja = np.intersect1d(ts.solute_idx[mi], ts.solute_idx[mj],
+                                                return_indices=True)
+                if common.size == 0:
+                    continue
+                ri, rj = mi[ia], mj[ja]
+                d_obs = ts.rt_min[rj] - ts.rt_min[ri]
+                pi = elute(fp.log_kw[ri], ts.s[ri], ts.systems[i].program).rt_min
+                pj = elute(fp.log_kw[rj], ts.s[rj], ts.systems[j].program).rt_min
+                big = np.abs(d_obs) > min_shift_min
+                agree += int(np.sum(np.sign(pj - pi)[big] == np.sign(d_obs[big])))
+                total += int(big.sum())
+    return (agree / total if total else float("nan")), total

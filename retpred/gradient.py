@@ -52,9 +52,9 @@ class ElutionProgram:
     volume_ml, phi:
         Breakpoints of ``phi_in(V)`` (inlet composition, volume fraction 0-1) against the
         delivered volume; constant at ``phi[-1]`` beyond the last breakpoint.
-    pump_time_min, pump_volume_ml:
-        The pump's delivered volume at the pump-program breakpoints (used to turn volumes
-        back into times; the flow is linear in time between them and constant after).
+    pump_time_min, pump_volume_ml, pump_flow_ml_min, pump_phi:
+        The pump program's breakpoints: delivered volume, flow (linear in time between
+        them, constant after) and composition leaving the mixer.
     dead_volume_ml:
         Column dead volume V0 = t0 * F.
     dwell_volume_ml:
@@ -70,6 +70,7 @@ class ElutionProgram:
     pump_time_min: np.ndarray
     pump_volume_ml: np.ndarray
     pump_flow_ml_min: np.ndarray
+    pump_phi: np.ndarray
     dead_volume_ml: float
     dwell_volume_ml: float
     hold_volume_ml: float
@@ -177,6 +178,7 @@ def build_program(
         pump_time_min=t,
         pump_volume_ml=pump_v,
         pump_flow_ml_min=f,
+        pump_phi=p,
         dead_volume_ml=float(dead_time_min * f[0]),
         dwell_volume_ml=float(dwell_volume_ml),
         hold_volume_ml=hold_v,

@@ -604,7 +604,7 @@ def _same_file(a: Path, b: Path) -> bool:
         return os.path.abspath(a) == os.path.abspath(b)
 
 
-def _check_target(path, force: bool, inputs: Sequence) -> Path:
+def check_output_target(path, force: bool, inputs: Sequence) -> Path:
     p = Path(path)
     if not str(path):
         raise InputError("empty output path")
@@ -633,7 +633,7 @@ def atomic_output_path(path, force: bool = False, inputs: Sequence = ()) -> Iter
     ``path`` (``os.replace``, atomic on one file system), on any exception (including
     KeyboardInterrupt) it is deleted. Refuses to overwrite an input or, without ``force``,
     an existing file. The temporary name keeps the suffix so writers choose the format."""
-    target = _check_target(path, force, inputs)
+    target = check_output_target(path, force, inputs)
     try:
         fd, name = tempfile.mkstemp(prefix=f".{target.name}.", suffix=f".tmp{target.suffix}",
                                     dir=target.parent)

@@ -81,7 +81,8 @@ class MobilePhase:
 
 @dataclass(frozen=True)
 class Gradient:
-    """Pump program: rows of (time_min, percent_b, flow_ml_min), times increasing from 0.
+    """Pump program: rows of (time_min, percent_b, flow_ml_min), times increasing from 0
+    (two rows at the same time make a step).
 
     Linear between rows; an isocratic method is a single row. The flow of a row defaults to
     ``flow_ml_min``.
@@ -427,9 +428,12 @@ def _parse_program(r: _Reader, value: Any, flow_ml_min: float | None
         percent_b = r.as_number(row[1], f"{where}[1]")
         if i == 0 and time_min != 0.0:
             raise r.error(f"the program must start at time 0, got {time_min:g} min", where)
-        if i > 0 and time_min <= rows[-1][0]:
-            raise r.error(f"times must increase strictly: {time_min:g} min follows "
+        if i > 0 and time_min < rows[-1][0]:
+            raise r.error(f"times must increase: {time_min:g} min follows "
                           f"{rows[-1][0]:g} min", where)
+        if i > 1 and time_min == rows[-1][0] == rows[-2][0]:
+            raise r.error(f"three rows at {time_min:g} min; two rows at one time make a step, "
+                          "more are ambiguous", where)
         r.in_range(percent_b, 0.0, 100.0, f"{where}[1]", "%B", "%")
         if len(row) == 3:
             flow = r.as_number(row[2], f"{where}[2]")

@@ -206,6 +206,9 @@ class RetentionModel:
     meta_: dict = field(default_factory=dict)
     #: lab correction learned by ``retpred train``: {"offset", "slope", "pivot"} applied to
     #: the open-data prediction, then ``lab_gbm_`` on the remaining residual (or None)
+    #: applicability domain: descriptor mean, inverse covariance and the Mahalanobis
+    #: distance that 99.5 % of the training structures stay within
+    domain_: dict = field(default_factory=dict)
     lab_linear_: dict | None = None
     lab_gbm_: HistGradientBoostingRegressor | None = None
 
@@ -284,7 +287,16 @@ class RetentionModel:
         ).fit(x, resid, sample_weight=sample_weight)
         self.ridge_ = ridge
         self.gbm_ = gbm
+        self.domain_ = fit_domain(solutes.descriptors[np.unique(idx)])
         return self
+
+    def outside_domain(self, solutes: Solutes) -> np.ndarray:
+        """True where a structure is far from every training structure (see
+        :func:`fit_domain`); unusable rows are False (they have their own status)."""
+        if not self.domain_:
+            return np.zeros(len(solutes), dtype=bool)
+        d = mahalanobis(solutes.descriptors, self.domain_)
+        return np.isfinite(d) & (d > self.domain_["threshold"])
 
     # --- metadata ----------------------------------------------------------------------
     def describe(self) -> dict:
@@ -296,6 +308,30 @@ class RetentionModel:
             "column_terms": list(COLUMN_TERM_NAMES),
             **self.meta_,
         }
+
+
+#: Training structures whose Mahalanobis distance stays within this quantile define the
+#: domain; 99.5 % keeps the unusual-but-seen inside and flags what nothing resembles.
+DOMAIN_QUANTILE = 0.995
+
+
+def fit_domain(descriptors: np.ndarray) -> dict:
+    """Applicability domain in descriptor space: mean, (regularised) inverse covariance and
+    the ``DOMAIN_QUANTILE`` of the training structures' Mahalanobis distances."""
+    d = descriptors[np.all(np.isfinite(descriptors), axis=1)]
+    mean = d.mean(axis=0)
+    cov = np.cov(d, rowvar=False) + 1e-6 * np.eye(d.shape[1])
+    icov = np.linalg.pinv(cov)
+    dom = {"mean": mean.tolist(), "icov": icov.tolist()}
+    dist = mahalanobis(d, dom)
+    dom["threshold"] = float(np.quantile(dist, DOMAIN_QUANTILE))
+    return dom
+
+
+def mahalanobis(descriptors: np.ndarray, domain: dict) -> np.ndarray:
+    diff = descriptors - np.asarray(domain["mean"])
+    icov = np.asarray(domain["icov"])
+    return np.sqrt(np.maximum(np.einsum("ij,jk,ik->i", diff, icov, diff), 0.0))
 
 
 def _take_sites(sites: SiteTable, idx: np.ndarray) -> SiteTable:

@@ -21,9 +21,11 @@ from retpred.method import Method
 from retpred.model import RetentionModel, Solutes, SystemContext, featurise
 from retpred.peaks import neighbour_pairs, peak_sigma_min
 
+STATUS_OUTSIDE_DOMAIN = "outside training domain (estimate less certain)"
+
 #: Nominal coverage of the prediction interval [rt_low_min, rt_high_min].
 INTERVAL_COVERAGE = 0.90
-_Z90 = 1.6448536269514722  # standard normal 95th percentile
+Z90 = 1.6448536269514722  # standard normal 95th percentile
 
 OUTPUT_COLUMNS = (
     "name", "smiles", "status", "rt_min", "rt_low_min", "rt_high_min", "elution_order",
@@ -104,6 +106,7 @@ def predict_solutes(
     logp = solutes.logp
     logd = log_d(logp, ion)
 
+    far = prep.model.outside_domain(solutes)
     status = []
     for i in range(n):
         parts = []
@@ -114,6 +117,8 @@ def predict_solutes(
         else:
             if solutes.batch.status[i] != "ok":
                 parts.append(solutes.batch.status[i])
+            if far[i]:
+                parts.append(STATUS_OUTSIDE_DOMAIN)
             if el.status[i] != STATUS_OK:
                 parts.append(str(el.status[i]))
         status.append("; ".join(parts) if parts else "ok")
@@ -159,7 +164,7 @@ def add_pairs(table: pd.DataFrame, model: RetentionModel) -> pd.DataFrame:
     rt = table["rt_min"].to_numpy(dtype=float)
     sigma = table["peak_width_min"].to_numpy(dtype=float) / 4.0
     half = (table["rt_high_min"].to_numpy(float) - table["rt_low_min"].to_numpy(float)) / 2
-    sd = np.where(np.isfinite(half), half / _Z90, np.nan)
+    sd = np.where(np.isfinite(half), half / Z90, np.nan)
     rho = float(model.residual_sd_.get("neighbour_rho", 0.0))
     pairs = neighbour_pairs(rt, sigma, table["name"].astype(str).tolist(), sd, rho=rho)
     out = table.copy()

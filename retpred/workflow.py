@@ -14,7 +14,13 @@ from rich.table import Table
 
 from retpred.calibration import Calibration
 from retpred.errors import InputError
-from retpred.io import AnalyteChunk, _check_target, atomic_output, iter_analytes, read_calibrants
+from retpred.io import (
+    AnalyteChunk,
+    atomic_output,
+    check_output_target,
+    iter_analytes,
+    read_calibrants,
+)
 from retpred.method import PHASE_CLASSES, Method, load_method, method_summary
 from retpred.model import RetentionModel, featurise
 from retpred.modelfile import load_model
@@ -35,7 +41,7 @@ def check_outputs(outputs: Sequence[Path | None], inputs: Sequence[Path | None],
     for o in outputs:
         if o is None:
             continue
-        _check_target(o, force, [i for i in inputs if i is not None])
+        check_output_target(o, force, [i for i in inputs if i is not None])
         key = str(Path(o).resolve())
         if key in seen:
             raise InputError("the same file is given for two outputs", path=str(o))
@@ -127,12 +133,17 @@ def predict_table(
 def run_predict(
     analytes: Path, method_path: Path, *, calibrants=None, calibration=None, model=None,
     out=None, plot=None, jobs: int = 1, chunk_size: int = 5000, force: bool = False,
-    quiet: bool = False,
+    quiet: bool = False, scheduler=None,
 ) -> pd.DataFrame:
     inputs = [analytes, method_path, calibrants, calibration, model]
     check_outputs([out, plot], inputs, force)
     method, mdl, prep = prepared_run(method_path, model, calibrants, calibration)
-    table = predict_table(prep, analytes, chunk_size=chunk_size, jobs=jobs, progress=not quiet)
+    from retpred.batch import stream_predict
+
+    summary = stream_predict(prep, analytes, out, chunk_size=chunk_size, jobs=jobs,
+                             scheduler=scheduler, force=force, inputs=inputs,
+                             progress=not quiet)
+    table = summary.table if summary.table is not None else summary.preview
     notes = list(method.warnings)
     if prep.calibration is not None:
         cal = prep.calibration
@@ -144,15 +155,21 @@ def run_predict(
         notes.extend(cal.warnings)
         from retpred.calibration import coverage_warning
 
-        w = coverage_warning(cal, table["rt_min"].to_numpy(float))
+        w = coverage_warning(cal, np.asarray(summary.rt_min, float))
         if w:
             notes.append(w)
     else:
         notes.append("not calibrated: times are zero-shot estimates for this system "
                      "(give --calibrants with a few measured standards to correct them)")
-    if out is not None:
-        write_csv(table, out, force=force, inputs=inputs)
-    if plot is not None:
+    if summary.n_failed:
+        notes.append(f"{summary.n_failed} of {summary.n_rows} row(s) without a predicted time; "
+                     "see their status")
+    if summary.table is None:
+        notes.append(f"{summary.n_rows} rows: the table shows the first {len(table)} in elution "
+                     "order; all rows are in the CSV")
+    if plot is not None and summary.table is None:
+        notes.append("no chromatogram drawn for a list this long")
+    elif plot is not None:
         plot_chromatogram(table, plot, title=f"retpred: {Path(analytes).name}",
                           subtitle=method_summary(method), force=force, inputs=inputs)
     if not quiet:

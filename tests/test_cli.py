@@ -16,6 +16,7 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 import pytest
+from tests_support import write_system_method
 from typer.testing import CliRunner
 
 from retpred.cli import app
@@ -127,31 +128,6 @@ def test_crafted_pickle_model_is_refused_and_never_runs(analytes, demo_dir, tmp_
     assert not marker.exists()
 
 
-def _system_method(system, path: Path):
-    """Write an open-data system's own method as a TOML method file."""
-    prog = system.program
-    rows = ", ".join(
-        f"[{t:.6g}, {100 * p:.6g}, {f:.6g}]"
-        for t, p, f in zip(prog.pump_time_min, _pump_phi(system), prog.pump_flow_ml_min,
-                           strict=True)
-    )
-    path.write_text(
-        f'[column]\nphase = "{system.phase}"\nlength_mm = {system.length_mm}\n'
-        f"inner_diameter_mm = {system.inner_diameter_mm}\nparticle_um = {system.particle_um}\n"
-        f"dead_time_min = {prog.dead_time_min:.6g}\n"
-        f'[mobile_phase]\norganic = "{system.organic}"\nph = {system.ph}\n'
-        f"temperature_c = {system.temperature_c}\n"
-        f"[gradient]\nflow_ml_min = {system.flow_ml_min}\n"
-        f"dwell_volume_ml = {prog.dwell_volume_ml}\nprogram = [{rows}]\n"
-    )
-
-
-def _pump_phi(system):
-    # pump composition at the pump breakpoints (inlet profile shifted back by the dwell)
-    prog = system.program
-    return np.interp(prog.pump_volume_ml + prog.dwell_volume_ml, prog.volume_ml, prog.phi)
-
-
 @pytest.mark.opendata
 def test_calibrants_improve_a_real_system(shipped_model, open_data, open_systems, tmp_path):
     """Dataset 0002 (RepoRT-derived open data): 10 measured calibrants must bring the
@@ -161,7 +137,7 @@ def test_calibrants_improve_a_real_system(shipped_model, open_data, open_systems
     system = next(s for s in open_systems if s.dataset == "0002")
     rows = load_compounds(open_data, {"0002"}).sample(n=70, random_state=0)
     method = tmp_path / "m.toml"
-    _system_method(system, method)
+    write_system_method(system, method)
     cal, rest = rows.iloc[:10], rows.iloc[10:]
     cal_p, rest_p = tmp_path / "cal.csv", tmp_path / "rest.csv"
     cal[["name", "smiles", "rt_min"]].to_csv(cal_p, index=False)

@@ -251,8 +251,8 @@ INVALID = [
      "0-100"),
     ("organic % B", _set("mobile_phase.b_organic_percent", 120),
      "mobile_phase.b_organic_percent", "0-100"),
-    ("time not increasing", _program([[0, 5], [5, 50], [5, 95]]), "gradient.program[2]",
-     "increase"),
+    ("three rows at one time", _program([[0, 5], [5, 50], [5, 95], [5, 60]]),
+     "gradient.program[3]", "step"),
     ("time decreasing", _program([[0, 5], [5, 50], [4, 95]]), "gradient.program[2]", "increase"),
     ("not starting at 0", _program([[1, 5], [5, 95]]), "gradient.program[0]", "time 0"),
     ("row too short", _program([[0]]), "gradient.program[0]", "row"),
@@ -447,3 +447,14 @@ def test_valid_programs_are_kept_exactly(steps):
     program = parse_method(data, "p.toml").gradient.program
     assert [list(r[:2]) for r in program] == rows
     assert all(r[2] == 0.4 for r in program)
+
+
+def test_two_rows_at_one_time_are_a_step(tmp_path):
+    """A step gradient (two rows at one time) is accepted and kept as written."""
+    text = FULL.replace("program = [[0.0, 5.0], [1.0, 5.0], [10.0, 95.0], [12.0, 95.0]]",
+                           "program = [[0.0, 5.0], [4.0, 5.0], [4.0, 60.0], [12.0, 60.0]]")
+    p = tmp_path / "step.toml"
+    p.write_text(text)
+    m = load_method(p)
+    assert [row[:2] for row in m.gradient.program] == [(0.0, 5.0), (4.0, 5.0), (4.0, 60.0),
+                                                      (12.0, 60.0)]

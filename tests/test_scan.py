@@ -1,0 +1,382 @@
+"""Method-development scans (retpred.scan) against closed forms, handbook values and practice.
+
+Sources named beside each check value:
+- Henderson-Hasselbalch and the species-weighted retention factor k = f0 k_n + (1 - f0) k_ion
+  (retention-physics.md section 4): the k-vs-pH curve of a monoprotic solute is a logistic
+  in pH with its inflection exactly at the pKa.
+- pKa values: benzoic acid 4.20 (CRC Handbook, from memory; also
+  datasets/reference/pka_reference.tsv), benzylamine 9.34 (CRC Handbook, from memory).
+- Buffer pKa values (CRC Handbook, from memory); buffer range pKa +- 1 (common practice).
+- LSS gradient closed form tR = (t0 / b) log10(2.3 k0 b + 1) + t0 + tD,
+  b = S dphi t0 / tG (Snyder and Dolan, High-Performance Gradient Elution, 2007;
+  retention-physics.md section 3).
+- Darcy's law dP ~ 1 / dp^2 at constant flow; typical column pressures (common practice,
+  retention-physics.md section 6); pump ratings 400 bar HPLC (common practice).
+"""
+
+from __future__ import annotations
+
+import copy
+import dataclasses
+import time
+
+import numpy as np
+import pandas as pd
+import pytest
+
+from retpred.column import column_hsm
+from retpred.errors import InputError, MethodError
+from retpred.gradient import log_kw_from_rt, program_from_method
+from retpred.method import Column, Gradient, Instrument, Method, MobilePhase
+from retpred.model import COLUMN_TERM_NAMES, SystemContext, featurise
+from retpred.predict import add_pairs, predict_solutes, prepare, system_context
+from retpred.scan import (
+    buffers_for_ph,
+    gradient_time_scan,
+    parse_range,
+    ph_scan,
+    phase_ph_scan,
+    plot_scan,
+    pressure_report,
+    retention_grid,
+    robust_windows,
+    scan_summary_frame,
+    scan_to_frame,
+    stretch_ramp,
+)
+
+pytestmark = pytest.mark.opendata  # the scans need a trained model (small_model fixture)
+
+BENZOIC_ACID = "OC(=O)c1ccccc1"  # pKa 4.20 (CRC Handbook, from memory)
+BENZYLAMINE = "NCc1ccccc1"  # pKa 9.34 (CRC Handbook, from memory)
+PKA_BENZOIC = 4.20
+PKA_BENZYLAMINE = 9.34
+# A column rated pH 1-12.5 (hybrid particles are rated about 1-12, common practice) so the
+# base's whole curve can be seen.
+WIDE = Column("C18", 150.0, 4.6, 5.0, ph_min=1.0, ph_max=12.5)
+FINE_PH = np.round(np.arange(1.0, 12.5 + 1e-9, 0.02), 4)
+
+
+def _method(column=WIDE, program=((0.0, 20.0, 1.0),), dwell_ml=1.0, ph=7.0, flow=1.0,
+            max_pressure_bar=None, organic="acetonitrile", temperature_c=30.0):
+    return Method(
+        column=column,
+        mobile_phase=MobilePhase(organic, 0.0, 100.0, ph, temperature_c),
+        gradient=Gradient(flow, program, dwell_ml),
+        instrument=Instrument(max_pressure_bar),
+    )
+
+
+def _t0(method):
+    return 0.5 * (method.column.length_mm / 10) * (method.column.inner_diameter_mm / 10) ** 2 / (
+        method.gradient.flow_ml_min)  # Vm = 0.5 L dc^2 (retention-physics.md section 1)
+
+
+@pytest.fixture(scope="module")
+def hh_model(small_model):
+    """The small model with its learned linear charge terms switched off, so that pH acts
+    only through the species-weighted Henderson-Hasselbalch term (the closed-form case)."""
+    m = copy.deepcopy(small_model)
+    coef = m.ridge_.coef_.copy()
+    for name in ("cation", "anion", "dC*cation"):
+        coef[COLUMN_TERM_NAMES.index(name)] = 0.0
+    m.ridge_.coef_ = coef
+    return m
+
+
+@pytest.fixture(scope="module")
+def acid_base():
+    return featurise([BENZOIC_ACID, BENZYLAMINE]), ["benzoic acid", "benzylamine"]
+
+
+def _inflection(x, y):
+    """pH of the steepest slope, refined by a parabola through the three points around it."""
+    d = np.gradient(y, x)
+    i = int(np.nanargmax(np.abs(d)))
+    if 0 < i < x.size - 1:
+        a, b, c = np.abs(d[i - 1 : i + 2])
+        den = a - 2 * b + c
+        if den != 0:
+            return float(x[i] + 0.5 * (a - c) / den * (x[1] - x[0]))
+    return float(x[i])
+
+
+def _k(result, method):
+    t0 = _t0(method)
+    return (result.rt_min - t0) / t0
+
+
+# --- pH: the closed-form sigmoid -----------------------------------------------------------
+
+
+def test_isocratic_k_vs_ph_is_hh_sigmoid_at_tabulated_pka(hh_model, acid_base):
+    sol, names = acid_base
+    method = _method()
+    res = ph_scan(method, hh_model, sol, names, FINE_PH)
+    k = _k(res, method)
+    assert np.all(np.isfinite(k))
+    for j, (pka, sign) in enumerate(((PKA_BENZOIC, -1), (PKA_BENZYLAMINE, +1))):
+        kk = k[:, j]
+        assert _inflection(FINE_PH, kk) == pytest.approx(pka, abs=0.3)
+        # acid loses retention as pH rises, base gains it (retention-physics.md section 7)
+        assert np.all(sign * np.diff(kk) >= -1e-9)
+        # the normalised curve is the Henderson-Hasselbalch neutral fraction at the tabulated
+        # pKa: acid f0 = 1 / (1 + 10^(pH - pKa)), base f0 = 1 / (1 + 10^(pKa - pH))
+        f0 = 1.0 / (1.0 + 10.0 ** (-sign * (FINE_PH - pka)))
+        norm = (kk - kk.min()) / (kk.max() - kk.min())  # (k - k_ion) / (k_n - k_ion) = f0
+        np.testing.assert_allclose(norm, f0, atol=0.06)
+    # the chemistry layer's assigned pKa (what the physics uses) for the report
+    assert sol.sites.describe(0).startswith("aromatic carboxylic acid")
+
+
+def test_gradient_ph_curve_keeps_inflection_in_k(hh_model, acid_base):
+    # 5-95 % B in 20 min: times move in opposite directions; the kw recovered from the
+    # predicted gradient times (exact inverse of the engine) has its inflection at the pKa.
+    sol, names = acid_base
+    method = _method(program=((0.0, 5.0, 1.0), (20.0, 95.0, 1.0), (25.0, 95.0, 1.0)))
+    res = ph_scan(method, hh_model, sol, names, FINE_PH)
+    prog = program_from_method(method)
+    s = 0.25 * np.sqrt(sol.mw)  # S = 0.25 M^0.5 (Snyder and Dolan rule of thumb)
+    for j, (pka, sign) in enumerate(((PKA_BENZOIC, -1), (PKA_BENZYLAMINE, +1))):
+        rt = res.rt_min[:, j]
+        assert np.all(np.isfinite(rt))
+        assert np.all(sign * np.diff(rt) >= -1e-9)
+        assert sign * (rt[-1] - rt[0]) > 0.5  # a visible move (minutes)
+        kw = 10.0 ** log_kw_from_rt(rt, s[j], prog)
+        assert _inflection(FINE_PH, kw) == pytest.approx(pka, abs=0.3)
+        # the time curve itself is steepest on the ionised side of the pKa, within 1 unit
+        # (tR is about linear in log k, whose inflection is shifted by drop/2)
+        infl_rt = _inflection(FINE_PH, rt)
+        assert 0.0 <= sign * (pka - infl_rt) <= 1.0
+
+
+def test_trained_model_sigmoid_within_eluent_pka_shift(small_model, acid_base):
+    # With the learned charge terms the apparent pKa may move as in real hydro-organic
+    # eluents: carboxylic acids become weaker (pKa up, by up to about 1 unit at 20-40 %
+    # acetonitrile), protonated amines slightly stronger acids (pKa down a little) (common
+    # practice, from memory; retention-physics.md section 4). Direction and plateaus hold.
+    sol, names = acid_base
+    method = _method()
+    k = _k(ph_scan(method, small_model, sol, names, FINE_PH), method)
+    acid, base = k[:, 0], k[:, 1]
+    assert acid[0] > 1.5 * acid[-1] and base[-1] > 1.5 * base[0]
+    assert PKA_BENZOIC - 0.3 <= _inflection(FINE_PH, acid) <= PKA_BENZOIC + 1.0
+    assert PKA_BENZYLAMINE - 1.0 <= _inflection(FINE_PH, base) <= PKA_BENZYLAMINE + 0.3
+    for kk in (acid, base):  # sigmoid: flat ends (slope < 10 % of the steepest)
+        d = np.abs(np.gradient(kk, FINE_PH))
+        assert d[:10].max() < 0.1 * d.max() and d[-10:].max() < 0.1 * d.max()
+
+
+def test_points_outside_column_ph_range_are_skipped(small_model, acid_base):
+    sol, names = acid_base
+    silica = dataclasses.replace(WIDE, ph_min=2.0, ph_max=8.0)  # silica C18 (common practice)
+    res = ph_scan(_method(column=silica), small_model, sol, names, parse_range("1:10:0.5", "x"))
+    assert res.values.min() >= 2.0 and res.values.max() <= 8.0
+    np.testing.assert_allclose(res.skipped, [1.0, 1.5, 8.5, 9.0, 9.5, 10.0])
+    assert res.rt_min.shape == (res.values.size, 2)
+    assert any("outside the column's usable range" in w for w in res.warnings)
+
+
+def test_fast_path_equals_model_and_prediction_path(small_model, demo_dir):
+    from retpred.method import load_method
+
+    method = load_method(demo_dir / "method.toml")
+    demo = pd.read_csv(demo_dir / "analytes.csv")
+    sol = featurise(demo["smiles"].tolist())
+    names = demo["name"].tolist()
+    ph = [2.5, 4.0, 6.9]
+    ctxs = [dataclasses.replace(system_context(method), ph=p) for p in ph]
+    lk, s, _ = retention_grid(small_model, sol, ctxs)
+    res = ph_scan(method, small_model, sol, names, ph)
+    for i, p in enumerate(ph):
+        a, b = small_model.retention_parameters(sol, ctxs[i])
+        np.testing.assert_allclose(lk[i], a, rtol=0, atol=1e-12)
+        np.testing.assert_allclose(s, b, rtol=0, atol=1e-12)
+        mp = dataclasses.replace(method.mobile_phase, ph=p)
+        table = add_pairs(predict_solutes(prepare(dataclasses.replace(
+            method, mobile_phase=mp), small_model), sol, names), small_model)
+        np.testing.assert_allclose(res.rt_min[i], table["rt_min"].to_numpy(float), atol=1e-9)
+        assert res.min_resolution[i] == pytest.approx(np.nanmin(table["resolution_next"]))
+
+
+def test_scan_50_analytes_61_points_is_fast(small_model, open_data):
+    # issue 6: 50 analytes x 61 pH points in under 10 s on one core (generous here: the
+    # benchmark scripts/bench_scan.py measures it against a baseline)
+    comp = pd.read_csv(open_data / "compounds.tsv.gz", sep="\t", usecols=["name", "smiles"])
+    comp = comp.dropna().drop_duplicates("smiles").sample(50, random_state=7)
+    method = _method(
+        column=Column("C18", 100.0, 2.1, 1.7),
+        program=((0.0, 5.0, 0.4), (10.0, 95.0, 0.4), (12.0, 95.0, 0.4)), dwell_ml=0.2)
+    t = time.perf_counter()
+    sol = featurise(comp["smiles"].tolist())
+    res = ph_scan(method, small_model, sol, comp["name"].tolist(), parse_range("2:8:0.1", "x"))
+    elapsed = time.perf_counter() - t
+    assert res.rt_min.shape == (61, 50)
+    assert elapsed < 10.0
+
+
+# --- gradient time -------------------------------------------------------------------------
+
+
+def test_stretch_ramp_rule():
+    m = _method(program=((0.0, 5.0, 0.4), (0.5, 5.0, 0.4), (10.0, 95.0, 0.4), (12.0, 95.0, 0.4)))
+    rows = stretch_ramp(m, 20.0).gradient.program
+    # hand arithmetic: the hold stays, the ramp lasts 20 min, the wash keeps its 2 min
+    assert [r[:2] for r in rows] == [(0.0, 5.0), (0.5, 5.0), (20.5, 95.0), (22.5, 95.0)]
+    two_step = _method(program=((0.0, 10.0, 1.0), (5.0, 40.0, 1.0), (10.0, 90.0, 1.0)))
+    rows = stretch_ramp(two_step, 20.0).gradient.program
+    assert [r[:2] for r in rows] == [(0.0, 10.0), (10.0, 40.0), (20.0, 90.0)]
+    with pytest.raises(MethodError):
+        stretch_ramp(_method(), 10.0)  # isocratic: nothing to stretch
+
+
+def test_gradient_time_scan_matches_lss_closed_form(small_model):
+    # one linear ramp 5-95 % B from t = 0, no dwell volume, strongly retained solutes:
+    # tR = (t0 / b) log10(2.3 k0 b + 1) + t0, b = S dphi t0 / tG (Snyder and Dolan 2007)
+    method = _method(program=((0.0, 5.0, 1.0), (10.0, 95.0, 1.0), (40.0, 95.0, 1.0)),
+                     dwell_ml=0.0, ph=3.0)
+    smiles = ["CCCCc1ccccc1", "c1ccc2ccccc2c1", "Clc1ccc(Cl)cc1"]
+    sol = featurise(smiles)
+    tg = np.array([5.0, 10.0, 20.0, 30.0])
+    res = gradient_time_scan(method, small_model, sol, smiles, tg)
+    ctx = system_context(method)
+    lkw, s = small_model.retention_parameters(sol, ctx)
+    t0 = _t0(method)
+    k0 = 10.0 ** (lkw - s * 0.05)
+    for i, t in enumerate(tg):
+        b = s * 0.90 * t0 / t
+        expected = t0 / b * np.log10(2.3 * k0 * b + 1.0) + t0
+        assert np.all(expected - t0 < t)  # elutes during the ramp (the closed form's domain)
+        np.testing.assert_allclose(res.rt_min[i], expected, rtol=2e-3)
+    # longer gradients: later peaks and more peak capacity (common practice)
+    assert np.all(np.diff(res.rt_min, axis=0) > 0)
+    assert np.all(np.diff(res.peak_capacity) > 0)
+
+
+# --- pressure and efficiency ---------------------------------------------------------------
+
+
+def test_pressure_report_worked_examples_and_particle_scaling():
+    # 150 x 4.6 mm, 5 um, 1 mL/min, 50:50 water/acetonitrile, 25 C: about 45-150 bar for
+    # the column (common practice; tests/test_column.py uses the same range)
+    iso = _method(column=Column("C18", 150.0, 4.6, 5.0), program=((0.0, 50.0, 1.0),),
+                  temperature_c=25.0)
+    p = pressure_report(iso)
+    assert 45.0 <= p["max_pressure_bar"] <= 150.0
+    assert p["warning"] is None and p["limit_bar"] == 400.0  # HPLC pump rating (practice)
+    # 50 x 2.1 mm, 1.7 um, 0.5 mL/min, 5-95 % acetonitrile: several hundred bar (practice)
+    uhplc_col = Column("C18", 50.0, 2.1, 1.7)
+    grad = ((0.0, 5.0, 0.5), (5.0, 95.0, 0.5), (6.0, 95.0, 0.5))
+    pu = pressure_report(_method(column=uhplc_col, program=grad, dwell_ml=0.2,
+                                 max_pressure_bar=1000.0))
+    assert 250.0 <= pu["max_pressure_bar"] <= 1000.0
+    # halving the particle size quadruples the pressure (Darcy: dP ~ 1 / dp^2)
+    half = _method(column=dataclasses.replace(uhplc_col, particle_um=0.85), program=grad,
+                   dwell_ml=0.2, max_pressure_bar=1000.0)
+    ph_ = pressure_report(half)
+    assert ph_["max_pressure_bar"] / pu["max_pressure_bar"] == pytest.approx(4.0, rel=0.01)
+    assert ph_["over_limit"] and "exceeds" in ph_["warning"]
+
+
+def test_scan_warns_above_instrument_limit(small_model, acid_base):
+    # a 1.7 um, 150 mm column at 0.6 mL/min on a 400 bar pump: well above its rating
+    sol, names = acid_base
+    m = _method(column=dataclasses.replace(WIDE, inner_diameter_mm=2.1, particle_um=1.7),
+                program=((0.0, 5.0, 0.6), (10.0, 95.0, 0.6)), dwell_ml=0.2,
+                max_pressure_bar=400.0)
+    res = ph_scan(m, small_model, sol, names, [3.0, 7.0])
+    assert res.pressure["over_limit"]
+    assert any("exceeds the instrument limit" in w for w in res.warnings)
+
+
+# --- buffers -------------------------------------------------------------------------------
+
+
+def test_buffers_for_ph():
+    names = lambda ph: [o.name.split(" ")[0] for o in buffers_for_ph(ph)]  # noqa: E731
+    # acetate pKa 4.76, formate 3.75, phosphate 2.15/7.20 (CRC Handbook, from memory)
+    acetate = next(o for o in buffers_for_ph(4.76) if o.name.startswith("acetate"))
+    assert acetate.pka == pytest.approx(4.76) and acetate.distance_ph < 1e-9
+    assert "citrate" in names(4.76)  # citrate pKa2 4.76 as well (CRC Handbook, from memory)
+    assert "phosphate" in names(7.0) and "formate" not in names(7.0)
+    assert "ammonium" in names(9.5) and "phosphate" not in names(9.5)
+    assert "trifluoroacetic" in names(2.0)  # 0.1 % TFA gives about pH 2 (common practice)
+    for ph in np.arange(2.0, 11.01, 0.25):
+        for o in buffers_for_ph(float(ph)):
+            assert o.distance_ph <= 1.0 + 1e-9  # buffer range pKa +- 1 (common practice)
+    phosphate = next(o for o in buffers_for_ph(7.0) if o.name == "phosphate")
+    assert not phosphate.volatile and not phosphate.ms_compatible  # common practice
+    assert all(o.ms_compatible for o in buffers_for_ph(3.75) if o.name.startswith("formate"))
+
+
+# --- resolution map, phases, output --------------------------------------------------------
+
+
+def test_robust_windows_hand_example():
+    x = np.array([1.0, 2.0, 3.0, 4.0, 5.0, 6.0])
+    rs = np.array([1.0, 2.0, 2.0, 1.0, 1.6, np.nan])
+    assert robust_windows(x, rs, 1.5) == [(2.0, 3.0), (5.0, 5.0)]
+    assert robust_windows(x, rs, 2.5) == []
+
+
+def test_phase_scan_c18_retains_longer_and_own_hsm_column(small_model):
+    # C18 retains a non-polar analyte longer than C8 (retention-physics.md section 7)
+    from retpred.column import class_hsm
+
+    smiles = ["CCCCc1ccccc1", "c1ccc2ccccc2c1", "OC(=O)c1ccccc1", "NCc1ccccc1"]
+    sol = featurise(smiles)
+    method = _method(column=dataclasses.replace(WIDE, ph_min=2.0, ph_max=8.0),
+                     program=((0.0, 5.0, 1.0), (15.0, 95.0, 1.0), (18.0, 95.0, 1.0)))
+    own = dataclasses.replace(method.column, hsm=class_hsm("C18"))  # same numbers as C18
+    res = phase_ph_scan(method, small_model, sol, smiles, parse_range("2:8:0.5", "x"),
+                        phases=["C18", "C8"], extra_columns={"my column": own})
+    assert np.all(res.scans["C18"].rt_min[:, 0] > res.scans["C8"].rt_min[:, 0])
+    np.testing.assert_allclose(res.scans["my column"].rt_min, res.scans["C18"].rt_min)
+    top = res.summary.iloc[0]
+    assert res.suggestion.startswith(f"{top.phase} at pH {top.best_ph:g}")
+    assert ("resolves all pairs" in res.suggestion) == (top.n_unresolved == 0)
+
+
+def test_frames_and_plot(small_model, acid_base, tmp_path):
+    sol, names = acid_base
+    res = ph_scan(_method(), small_model, sol, names, parse_range("3:9:1", "x"))
+    long = scan_to_frame(res)
+    assert len(long) == 7 * 2 and set(long["analyte"]) == set(names)
+    summ = scan_summary_frame(res)
+    assert summ["best"].sum() == 1
+    for lo, hi in res.robust_windows:
+        inside = summ[(summ.value >= lo) & (summ.value <= hi)]
+        assert (inside.min_resolution >= 1.5).all() and inside.in_robust_window.all()
+    out = tmp_path / "scan.png"
+    plot_scan(res, out)
+    assert out.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
+    with pytest.raises(InputError):
+        plot_scan(res, out)  # exists, no force
+
+
+def test_parse_range():
+    assert parse_range("2:8:0.1", "--ph").size == 61
+    np.testing.assert_allclose(parse_range("5:60:5", "--gradient-time"), np.arange(5, 61, 5))
+    for bad in ("2:8:0", "8:2:1", "a:b:c", "2:8", ""):
+        with pytest.raises(InputError, match="--ph"):
+            parse_range(bad, "--ph", 0.0, 14.0)
+    with pytest.raises(InputError):
+        parse_range("1:15:1", "--ph", 0.0, 14.0)
+
+
+def test_retention_grid_falls_back_when_model_differs(small_model, acid_base):
+    # a model whose retention_parameters adds a term the fast path does not know about:
+    # the self-check must notice and use the model's own (batched) call
+    class Shifted(type(small_model)):
+        def retention_parameters(self, solutes, ctx, which=None, idx=None):
+            lk, s = super().retention_parameters(solutes, ctx, which=which, idx=idx)
+            ph = ctx.ph if not isinstance(ctx, list) else np.array([c.ph for c in ctx])[which]
+            return lk + 0.01 * ph, s
+
+    shifted = Shifted(**{f.name: getattr(small_model, f.name)
+                         for f in dataclasses.fields(small_model)})
+    sol, _ = acid_base
+    ctxs = [SystemContext("acetonitrile", p, 30.0, column_hsm(WIDE)) for p in (3.0, 5.0, 9.0)]
+    lk, _, _ = retention_grid(shifted, sol, ctxs)
+    for i, c in enumerate(ctxs):
+        np.testing.assert_allclose(lk[i], shifted.retention_parameters(sol, c)[0], atol=1e-12)

@@ -1,0 +1,98 @@
+"""The shipped default model: integrity, licence credit, safe loading, reproducible figures."""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import shutil
+
+import numpy as np
+import pytest
+import skops.io as sio
+
+from retpred.errors import ModelFileError
+from retpred.modelfile import (
+    MODELS_DIR,
+    default_model_path,
+    load_model,
+    save_model,
+)
+
+
+def test_sha256_matches_record(shipped_model):
+    path = default_model_path()
+    recorded = path.with_suffix(path.suffix + ".sha256").read_text().split()[0]
+    # hashlib is the reference implementation of SHA-256 here
+    assert hashlib.sha256(path.read_bytes()).hexdigest() == recorded
+    assert path.stat().st_size <= 50 * 1024 * 1024  # issue 3: at most 50 MB
+
+
+def test_model_card_credits_open_data(shipped_model):
+    card = (MODELS_DIR / "MODEL_CARD.md").read_text(encoding="utf-8")
+    assert "CC BY-SA 4.0" in card and "RepoRT" in card
+    assert shipped_model.meta_["training_data_sha256"] in card
+
+
+def test_tampered_default_is_refused(shipped_model, tmp_path, monkeypatch):
+    fake = tmp_path / "retpred-default.skops"
+    shutil.copy(default_model_path(), fake)
+    shutil.copy(default_model_path().with_suffix(".skops.sha256"), tmp_path)
+    data = bytearray(fake.read_bytes())
+    data[len(data) // 2] ^= 0xFF
+    fake.write_bytes(bytes(data))
+    monkeypatch.setattr("retpred.modelfile.MODELS_DIR", tmp_path)
+    with pytest.raises(ModelFileError, match="SHA-256"):
+        load_model()
+
+
+def test_other_format_version_is_refused(small_model, tmp_path, monkeypatch):
+    p = tmp_path / "old.skops"
+    monkeypatch.setattr("retpred.model.MODEL_FORMAT", 99)
+    save_model(small_model, p)
+    monkeypatch.undo()
+    with pytest.raises(ModelFileError, match="format"):
+        load_model(p)
+
+
+class NotAllowed:
+    """A type a model file must never instantiate."""
+
+    def __init__(self):
+        self.x = 1
+
+
+def test_unlisted_type_is_refused_before_loading(tmp_path):
+    p = tmp_path / "odd.skops"
+    sio.dump({"meta": "{}", "state": "{}", "reference": "{}", "ridge": NotAllowed(),
+              "gbm": None}, p)
+    with pytest.raises(ModelFileError, match="not allowed"):
+        load_model(p)
+
+
+def test_save_load_round_trip_predicts_identically(small_model, small_training_set, tmp_path):
+    from retpred.training import predict_rows
+
+    p = tmp_path / "m.skops"
+    save_model(small_model, p)
+    back = load_model(p)
+    mask = np.zeros(small_training_set.rt_min.size, bool)
+    mask[:300] = True
+    a = predict_rows(small_model, small_training_set, mask)[0]
+    b = predict_rows(back, small_training_set, mask)[0]
+    np.testing.assert_array_equal(a, b)
+
+
+@pytest.mark.opendata
+def test_reproduces_recorded_check_subset(shipped_model, open_data):
+    """Rebuild the check subset from the open data and recompute the recorded figure."""
+    from retpred.training import load_open_training_set, predict_rows
+
+    check = shipped_model.meta_["check_subset"]
+    ts = load_open_training_set(open_data, set(check["datasets"]))
+    assert ts.rt_min.size == check["n_rows"]
+    _, _, rt = predict_rows(shipped_model, ts)
+    med = float(np.nanmedian(np.abs(rt - ts.rt_min)))
+    assert med == pytest.approx(check["median_abs_error_min"], rel=1e-6)
+    # and the recorded validation figures are those of the card
+    assert json.dumps(shipped_model.metrics_)  # serialisable, present
+    assert shipped_model.metrics_["n_systems"] > 100

@@ -1,0 +1,24 @@
+"""Helpers shared by tests (not fixtures)."""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+
+def write_system_method(system, path: Path):
+    """Write an open-data system's own method as a TOML method file."""
+    prog = system.program
+    rows = ", ".join(
+        f"[{t:.6g}, {100 * p:.6g}, {f:.6g}]"
+        for t, p, f in zip(prog.pump_time_min, prog.pump_phi, prog.pump_flow_ml_min,
+                           strict=True)
+    )
+    path.write_text(
+        f'[column]\nphase = "{system.phase}"\nlength_mm = {system.length_mm}\n'
+        f"inner_diameter_mm = {system.inner_diameter_mm}\nparticle_um = {system.particle_um}\n"
+        f"dead_time_min = {prog.dead_time_min:.6g}\n"
+        f'[mobile_phase]\norganic = "{system.organic}"\nph = {system.ph}\n'
+        f"temperature_c = {system.temperature_c}\n"
+        f"[gradient]\nflow_ml_min = {system.flow_ml_min}\n"
+        f"dwell_volume_ml = {prog.dwell_volume_ml}\nprogram = [{rows}]\n"
+    )
