@@ -178,7 +178,7 @@ class _Pairs:
 
 
 def whole_list_pairs(rt_min, peak_width_min, rt_low_min, rt_high_min, rho: float,
-                     with_pairs: bool = True) -> _Pairs:
+                     with_pairs: bool = True, sd_scale: float = 1.0) -> _Pairs:
     """Order and neighbour pairs of the whole list, vectorised.
 
     The same relations as :func:`retpred.predict.add_pairs` / :func:`retpred.peaks.
@@ -190,7 +190,7 @@ def whole_list_pairs(rt_min, peak_width_min, rt_low_min, rt_high_min, rho: float
     n = rt.shape[0]
     sigma = np.asarray(peak_width_min, dtype=float) / 4.0
     half = (np.asarray(rt_high_min, dtype=float) - np.asarray(rt_low_min, dtype=float)) / 2
-    sd = np.where(np.isfinite(half), half / Z90, np.nan)
+    sd = np.where(np.isfinite(half), sd_scale * half / Z90, np.nan)
     valid = np.flatnonzero(np.isfinite(rt))
     order = valid[np.argsort(rt[valid], kind="stable")]
     elution = np.zeros(n, dtype=np.int64)
@@ -281,6 +281,7 @@ def stream_predict(
         check_output_target(out, force, guard)
     chunks = iter_analytes(analytes_path, chunk_size=chunk_size)
     rho = float(prep.model.residual_sd_.get("neighbour_rho", 0.0))
+    sd_scale = float(prep.model.residual_sd_.get("pair_sd_scale", 1.0))
 
     rt, width, low, high = [], [], [], []
     names: list[str] = []
@@ -326,7 +327,8 @@ def stream_predict(
             n_usable = int(np.isfinite(rt_all).sum())
             with_pairs = pair_limit is None or n_usable <= pair_limit
             pairs = whole_list_pairs(rt_all, np.concatenate(width), np.concatenate(low),
-                                     np.concatenate(high), rho, with_pairs=with_pairs)
+                                     np.concatenate(high), rho, with_pairs=with_pairs,
+                                     sd_scale=sd_scale)
             del width, low, high
             final_columns = _ordered_columns(columns)
             keep = n_rows <= keep_table

@@ -308,7 +308,9 @@ def coelution_pairs(ts: TrainingSet, fp: FoldPredictions, q_phi: tuple[float, fl
         p = unresolved_probability(rt[b] - rt[a], sigma[a], sigma[b], pair_sd, rs_threshold)
         w = 2 * rs_threshold * (sigma[a] + sigma[b])
         out.append(pd.DataFrame({"dataset": system.dataset, "risk": p,
-                                 "unresolved": np.abs(obs[b] - obs[a]) < w}))
+                                 "unresolved": np.abs(obs[b] - obs[a]) < w,
+                                 "delta_min": rt[b] - rt[a], "half_window_min": w,
+                                 "pair_sd_min": pair_sd}))
     return pd.concat(out, ignore_index=True)
 
 
@@ -321,39 +323,77 @@ def risk_calibration_table(pairs: pd.DataFrame, edges=(0, .05, .1, .2, .3, .4, .
                          "observed_unresolved": g["unresolved"].mean()}).reset_index()
 
 
-def ph_shift_agreement(ts: TrainingSet, fp: FoldPredictions, min_shift_min: float = 0.5):
-    """Sign agreement of predicted and observed pH shifts across the open data's pH series:
-    systems of one source with the same column, modifier, program and flow but another
-    pH. Returns (fraction agreeing, number of compound shifts over ``min_shift_min``)."""
-    def key(sy):
-        p = sy.program
-        return (sy.group, sy.phase, sy.organic, round(sy.length_mm, 1),
-                tuple(np.round(p.pump_time_min, 2)), tuple(np.round(p.phi, 3)),
-                round(float(p.pump_flow_ml_min[0]), 3))
+def ph_shift_agreement(ts: TrainingSet, fp: FoldPredictions, min_shift_min: float = 0.5,
+                       series: list[set[str]] | None = None) -> dict:
+    """Sign agreement of predicted and observed pH shifts across pH series of the open data.
 
-    groups: dict = {}
-    for i, sy in enumerate(ts.systems):
-        groups.setdefault(key(sy), []).append(i)
-    agree = total = 0
-    for members in groups.values():
-        phs = sorted({ts.systems[i].ph for i in members})
-        if len(phs) < 2:
-            continue
+    A series is a set of systems measured on one column and program at several pH; by
+    default systems of one source with the same phase, HSM parameters, length, modifier,
+    program and flow (``series`` names them explicitly). For every compound on two systems
+    of a series at different pH the shift (higher pH minus lower) is compared. Returns
+    ``agree_obs`` (fraction right among shifts observed over ``min_shift_min``), ``n_obs``,
+    ``agree_pred`` (fraction right among shifts *predicted* over it) and ``n_pred``.
+    """
+    pos = {sy.dataset: i for i, sy in enumerate(ts.systems)}
+    if series is None:
+        def key(sy):
+            p = sy.program
+            hsm = None if sy.hsm is None else tuple(round(v, 3) for v in vars(sy.hsm).values())
+            return (sy.group, sy.phase, hsm, sy.organic, round(sy.length_mm, 1),
+                    tuple(np.round(p.pump_time_min, 2)), tuple(np.round(p.pump_phi, 3)),
+                    round(float(p.pump_flow_ml_min[0]), 3))
+
+        groups: dict = {}
+        for i, sy in enumerate(ts.systems):
+            groups.setdefault(key(sy), []).append(i)
+        members_list = list(groups.values())
+    else:
+        members_list = [[pos[d] for d in sorted(g) if d in pos] for g in series]
+    d_obs_all, d_pred_all = [], []
+    for members in members_list:
         for i in members:
             for j in members:
                 if not ts.systems[i].ph < ts.systems[j].ph:
                     continue
                 mi = np.flatnonzero(ts.system_idx == i)
                 mj = np.flatnonzero(ts.system_idx == j)
-                common, ia, ja = np.intersect1d(ts.solute_idx[mi], ts.solute_idx[mj],
-                                                return_indices=True)
-                if common.size == 0:
-                    continue
+                _, ia, ja = np.intersect1d(ts.solute_idx[mi], ts.solute_idx[mj],
+                                           return_indices=True)
                 ri, rj = mi[ia], mj[ja]
-                d_obs = ts.rt_min[rj] - ts.rt_min[ri]
+                d_obs_all.append(ts.rt_min[rj] - ts.rt_min[ri])
                 pi = elute(fp.log_kw[ri], ts.s[ri], ts.systems[i].program).rt_min
                 pj = elute(fp.log_kw[rj], ts.s[rj], ts.systems[j].program).rt_min
-                big = np.abs(d_obs) > min_shift_min
-                agree += int(np.sum(np.sign(pj - pi)[big] == np.sign(d_obs[big])))
-                total += int(big.sum())
-    return (agree / total if total else float("nan")), total
+                d_pred_all.append(pj - pi)
+    if not d_obs_all:
+        return {"agree_obs": float("nan"), "n_obs": 0, "agree_pred": float("nan"), "n_pred": 0}
+    do, dp = np.concatenate(d_obs_all), np.concatenate(d_pred_all)
+    same = np.sign(do) == np.sign(dp)
+    big_o, big_p = np.abs(do) > min_shift_min, np.abs(dp) > min_shift_min
+    return {"agree_obs": float(same[big_o].mean()) if big_o.any() else float("nan"),
+            "n_obs": int(big_o.sum()),
+            "agree_pred": float(same[big_p].mean()) if big_p.any() else float("nan"),
+            "n_pred": int(big_p.sum())}
+
+def rescore_pairs(pairs: pd.DataFrame, scale: float) -> pd.DataFrame:
+    """The same pairs with the spacing sd multiplied by ``scale``."""
+    from retpred.peaks import unresolved_probability
+
+    w = pairs["half_window_min"].to_numpy()
+    risk = unresolved_probability(pairs["delta_min"].to_numpy(), w / 6.0, w / 6.0,
+                                  scale * pairs["pair_sd_min"].to_numpy(), 1.5)
+    return pairs.assign(risk=risk)
+
+
+PAIR_SD_SCALE_GRID = np.geomspace(0.02, 2.0, 60)
+
+
+def fit_pair_sd_scale(pairs: pd.DataFrame, grid=PAIR_SD_SCALE_GRID) -> float:
+    """Scale of the spacing sd that minimises the log-loss of the unresolved outcome of
+    left-out neighbour pairs (an empirical recalibration of the Gaussian error model)."""
+    y = pairs["unresolved"].to_numpy(bool)
+
+    def loss(c):
+        p = np.clip(rescore_pairs(pairs, c)["risk"].to_numpy(), 1e-4, 1 - 1e-4)
+        return -np.mean(np.where(y, np.log(p), np.log(1 - p)))
+
+    return float(min(grid, key=loss))

@@ -17,7 +17,6 @@ from collections.abc import Sequence
 from pathlib import Path
 
 import numpy as np
-from rich.console import Console
 from scipy.stats import siegelslopes
 from sklearn.ensemble import HistGradientBoostingRegressor
 from sklearn.model_selection import KFold
@@ -142,7 +141,9 @@ def train_lab_model(
     with atomic_output_path(out, force=force, inputs=inputs) as tmp:
         save_model(lab, tmp)
     if not quiet:
-        c = Console()
+        from retpred.report import make_console
+
+        c = make_console()
         c.print(f"lab model from {n_ok} compounds ({lab.meta_['lab_correction']}); "
                 "5-fold cross-validated median |error| in minutes:")
         for k, v in metrics.items():

@@ -164,7 +164,9 @@ def add_pairs(table: pd.DataFrame, model: RetentionModel) -> pd.DataFrame:
     rt = table["rt_min"].to_numpy(dtype=float)
     sigma = table["peak_width_min"].to_numpy(dtype=float) / 4.0
     half = (table["rt_high_min"].to_numpy(float) - table["rt_low_min"].to_numpy(float)) / 2
-    sd = np.where(np.isfinite(half), half / Z90, np.nan)
+    # pair_sd_scale: fitted on left-out pairs so that the risk is calibrated (model card)
+    scale = float(model.residual_sd_.get("pair_sd_scale", 1.0))
+    sd = np.where(np.isfinite(half), scale * half / Z90, np.nan)
     rho = float(model.residual_sd_.get("neighbour_rho", 0.0))
     pairs = neighbour_pairs(rt, sigma, table["name"].astype(str).tolist(), sd, rho=rho)
     out = table.copy()

@@ -936,7 +936,6 @@ def run_scan(analytes, method_path, *, ph: str | None = None, gradient_time: str
     ``ph`` and ``gradient_time`` are range texts (``2:8:0.1``); give exactly one. ``phases``
     (comma-separated class names, or 'all') turns a pH scan into a phase x pH scan.
     """
-    from rich.console import Console
     from rich.table import Table
 
     from retpred.io import iter_analytes
@@ -988,7 +987,9 @@ def run_scan(analytes, method_path, *, ph: str | None = None, gradient_time: str
             phase_result.scans[phase_result.summary.loc[0, "phase"]]
         plot_scan(best, Path(plot), force=force, inputs=inputs)
     if not quiet:
-        console = Console()
+        from retpred.report import make_console
+
+        console = make_console()
         console.print(method_summary(method))
         if phase_result is not None:
             t = Table(title="Columns over the pH range (class-median HSM parameters)")
