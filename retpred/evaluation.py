@@ -78,6 +78,14 @@ def _robust_line(x: np.ndarray, y: np.ndarray):
     return 0.0, float(np.nanmedian(y - x)) if ok.any() else 0.0
 
 
+def _scored_systems(ts: TrainingSet):
+    """(system index, row indices) of every system large enough to score."""
+    for sysi in np.unique(ts.system_idx):
+        m = np.flatnonzero(ts.system_idx == sysi)
+        if m.size >= MIN_SYSTEM_SIZE:
+            yield sysi, m
+
+
 def calibrate_on(pred_lk, obs_lk, obs_rt, s, prog, pick):
     """Fit the user-facing calibration on the calibrants ``pick`` of one system."""
     s_pick = s[pick]
@@ -134,10 +142,7 @@ def evaluate(ts: TrainingSet, fp: FoldPredictions, n_draws: int = 5, seed: int =
     cal_resid = []  # (fold, system row index, residuals in phi units) for interval coverage
     cal_cov_obs = []
     logp = ts.solutes.logp[ts.solute_idx]
-    for sysi in np.unique(ts.system_idx):
-        m = np.flatnonzero(ts.system_idx == sysi)
-        if m.size < MIN_SYSTEM_SIZE:
-            continue
+    for sysi, m in _scored_systems(ts):
         system = ts.systems[sysi]
         prog = system.program
         s = ts.s[m]
@@ -230,10 +235,7 @@ def calibrated_residual_quantiles(ts: TrainingSet, fp: FoldPredictions, q=(0.05,
     systems, and the correlation of neighbours' time errors (elution-order neighbours)."""
     rng = np.random.default_rng(seed)
     res_all, pairs_a, pairs_b = [], [], []
-    for sysi in np.unique(ts.system_idx):
-        m = np.flatnonzero(ts.system_idx == sysi)
-        if m.size < MIN_SYSTEM_SIZE:
-            continue
+    for sysi, m in _scored_systems(ts):
         prog = ts.systems[sysi].program
         s = ts.s[m]
         pred = fp.log_kw[m]
@@ -279,10 +281,7 @@ def coelution_pairs(ts: TrainingSet, fp: FoldPredictions, q_phi: tuple[float, fl
 
     rng = np.random.default_rng(seed)
     out = []
-    for sysi in np.unique(ts.system_idx):
-        m = np.flatnonzero(ts.system_idx == sysi)
-        if m.size < MIN_SYSTEM_SIZE:
-            continue
+    for sysi, m in _scored_systems(ts):
         system = ts.systems[sysi]
         prog = system.program
         s = ts.s[m]

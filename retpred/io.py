@@ -571,6 +571,18 @@ def _rt_column(keys: list[str], path: Path) -> str:
                      f"{_columns_found(keys) or 'none'}", path=str(path), field="rt_min")
 
 
+def read_smiles_list(path) -> tuple[list[str], list[str]]:
+    """All (smiles, names) of an analyte file; rows with a read error get an empty SMILES
+    (they are then reported in their row). For short lists: scans, column comparisons."""
+    smiles: list[str] = []
+    names: list[str] = []
+    for chunk in iter_analytes(path):
+        smiles.extend(s if e is None else "" for s, e in zip(chunk.smiles, chunk.error,
+                                                            strict=True))
+        names.extend(chunk.name)
+    return smiles, names
+
+
 def read_calibrants(path) -> pd.DataFrame:
     """Calibrant file -> DataFrame with columns ``line, name, smiles, rt_min``.
 

@@ -548,7 +548,7 @@ def load_method(path) -> Method:
     return parse_method(data, source, text=text)
 
 
-def _ramp(times: list[float], percents: list[float]) -> tuple[int, int] | None:
+def main_ramp(times: list[float], percents: list[float]) -> tuple[int, int] | None:
     """Indices (start, end) of the first monotone %B change, holds inside it included."""
     start = next((i for i in range(len(percents) - 1) if percents[i + 1] != percents[i]), None)
     if start is None:
@@ -572,7 +572,7 @@ def method_summary(method: Method) -> str:
             else f"{flows[0]:g} mL/min")
     times = [row[0] for row in g.program]
     percents = [row[1] for row in g.program]
-    ramp = _ramp(times, percents)
+    ramp = main_ramp(times, percents)
     if ramp is None:
         program = f"isocratic {percents[0]:g} %B"
         if times[-1] > 0:

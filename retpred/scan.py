@@ -43,7 +43,7 @@ from retpred.column import (
 )
 from retpred.errors import InputError, MethodError
 from retpred.gradient import elute, program_from_method
-from retpred.method import PHASE_CLASSES, Column, Method, method_summary
+from retpred.method import PHASE_CLASSES, Column, Method, main_ramp, method_summary
 from retpred.model import (
     RetentionModel,
     Solutes,
@@ -199,25 +199,10 @@ def pressure_report(method: Method) -> dict:
     }
 
 
-def _main_ramp(times: Sequence[float], percents: Sequence[float]) -> tuple[int, int] | None:
-    """Rows (start, end) of the first monotone %B change, holds inside it included (the same
-    rule as ``method_summary``)."""
-    start = next((i for i in range(len(percents) - 1) if percents[i + 1] != percents[i]), None)
-    if start is None:
-        return None
-    direction = 1.0 if percents[start + 1] > percents[start] else -1.0
-    end = k = start
-    while k + 1 < len(percents) and (percents[k + 1] - percents[k]) * direction >= 0:
-        k += 1
-        if (percents[k] - percents[end]) * direction > 0:
-            end = k
-    return start, end
-
-
 def ramp_time_min(method: Method) -> float:
     """Duration of the main gradient ramp (0 for an isocratic method)."""
     times = [r[0] for r in method.gradient.program]
-    ramp = _main_ramp(times, [r[1] for r in method.gradient.program])
+    ramp = main_ramp(times, [r[1] for r in method.gradient.program])
     return 0.0 if ramp is None else float(times[ramp[1]] - times[ramp[0]])
 
 
@@ -236,7 +221,7 @@ def stretch_ramp(method: Method, new_ramp_min: float) -> Method:
                          field="--gradient-time")
     rows = method.gradient.program
     times = [r[0] for r in rows]
-    ramp = _main_ramp(times, [r[1] for r in rows])
+    ramp = main_ramp(times, [r[1] for r in rows])
     if ramp is None:
         raise MethodError("the method is isocratic: there is no gradient ramp to stretch",
                           path=method.source, field="gradient.program")
@@ -261,7 +246,7 @@ def efficiency_report(method: Method, mw_g_mol: float = 300.0) -> dict:
     initial flow and the mid-ramp composition: Knox h (A 1, B 2, C 0.05, common practice) at
     nu = u dp / Dm, Dm by Wilke-Chang (``retpred.column.plate_number``)."""
     times, phis, flows = method.phi_program()
-    ramp = _main_ramp(times, phis)
+    ramp = main_ramp(times, phis)
     phi_mid = phis[0] if ramp is None else 0.5 * (phis[ramp[0]] + phis[ramp[1]])
     n = float(plate_number(method.column, flows[0], phi_mid, method.mobile_phase.organic,
                            method.temperature_c, mw_g_mol))
@@ -938,7 +923,7 @@ def run_scan(analytes, method_path, *, ph: str | None = None, gradient_time: str
     """
     from rich.table import Table
 
-    from retpred.io import iter_analytes
+    from retpred.io import read_smiles_list
     from retpred.method import load_method
     from retpred.model import featurise
     from retpred.modelfile import load_model
@@ -955,11 +940,7 @@ def run_scan(analytes, method_path, *, ph: str | None = None, gradient_time: str
         raise InputError(f"resolution target must be > 0, got {rs_target:g}", field="--rs-target")
     method = load_method(method_path)
     mdl = load_model(model)
-    smiles, names = [], []
-    for chunk in iter_analytes(analytes):
-        smiles.extend(s if e is None else "" for s, e in zip(chunk.smiles, chunk.error,
-                                                            strict=True))
-        names.extend(chunk.name)
+    smiles, names = read_smiles_list(analytes)
     sol = featurise(smiles)
     phase_result = None
     if ph is not None:

@@ -20,6 +20,7 @@ from retpred.io import (
     check_output_target,
     iter_analytes,
     read_calibrants,
+    read_smiles_list,
 )
 from retpred.method import PHASE_CLASSES, Method, load_method, method_summary
 from retpred.model import RetentionModel, featurise
@@ -248,11 +249,7 @@ def run_columns(analytes, method_path, *, phases=None, model=None, out=None, for
     check_outputs([out], inputs, force)
     method = load_method(method_path)
     mdl = load_model(model)
-    smiles, names = [], []
-    for chunk in iter_analytes(analytes):
-        smiles.extend(s if e is None else "" for s, e in zip(chunk.smiles, chunk.error,
-                                                            strict=True))
-        names.extend(chunk.name)
+    smiles, names = read_smiles_list(analytes)
     summary, _ = compare_columns(method, mdl, smiles, names, parse_phases(phases))
     if out is not None:
         flat = summary.copy()
