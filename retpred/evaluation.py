@@ -78,6 +78,12 @@ def _robust_line(x: np.ndarray, y: np.ndarray):
     return 0.0, float(np.nanmedian(y - x)) if ok.any() else 0.0
 
 
+def _nan_safe(fn, values) -> float:
+    """``fn`` (nanmean/nanmedian) that returns NaN quietly when every value is NaN."""
+    arr = np.asarray(values, dtype=float)
+    return float(fn(arr)) if np.isfinite(arr).any() else float("nan")
+
+
 def _scored_systems(ts: TrainingSet):
     """(system index, row indices) of every system large enough to score."""
     for sysi in np.unique(ts.system_idx):
@@ -139,6 +145,10 @@ def evaluate(ts: TrainingSet, fp: FoldPredictions, n_draws: int = 5, seed: int =
     rng = np.random.default_rng(seed)
     resid = (ts.log_kw - fp.log_kw) / ts.s  # elution-composition error, phi units
     rows = []
+    # compounds no training fold saw: per fold, which solutes the other folds contain
+    n_sol = len(ts.solutes)
+    seen = {f: np.bincount(ts.solute_idx[fp.fold != f], minlength=n_sol) > 0
+            for f in np.unique(fp.fold)}
     cal_resid = []  # (fold, system row index, residuals in phi units) for interval coverage
     cal_cov_obs = []
     logp = ts.solutes.logp[ts.solute_idx]
@@ -157,6 +167,11 @@ def evaluate(ts: TrainingSet, fp: FoldPredictions, n_draws: int = 5, seed: int =
                "last_rt_min": float(obs.max())}
         zs = system_metrics(obs, rt_zero)
         row.update({f"zero_{k}": v for k, v in zs.items()})
+        novel = ~seen[f][ts.solute_idx[m]]
+        row["n_novel"] = int(novel.sum())
+        if novel.sum() >= 5:
+            row["zero_novel_medae_pct"] = system_metrics(obs[novel], rt_zero[novel])[
+                "medae_pct"]
         lo = elute(pred_lk + q_lo * s, s, prog).rt_min
         hi = elute(pred_lk + q_hi * s, s, prog).rt_min
         inside = (obs >= lo) & (obs <= hi)
@@ -165,7 +180,7 @@ def evaluate(ts: TrainingSet, fp: FoldPredictions, n_draws: int = 5, seed: int =
         base_rt = fp.baseline_frac[m] * prog.program_end_min
         bz = system_metrics(obs, base_rt)
         row["gbm_zero_medae_pct"] = bz["medae_pct"]
-        cal_stats, logp_stats, gbm_stats = [], [], []
+        cal_stats, logp_stats, gbm_stats, novel_stats = [], [], [], []
         for _ in range(n_draws):
             pick = rng.choice(m.size, N_CALIBRANTS, replace=False)
             rest = np.setdiff1d(np.arange(m.size), pick)
@@ -173,16 +188,23 @@ def evaluate(ts: TrainingSet, fp: FoldPredictions, n_draws: int = 5, seed: int =
             lk_cal = cal.apply(pred_lk[rest])
             rt_cal = elute(lk_cal, s[rest], prog).rt_min
             cal_stats.append(system_metrics(obs[rest], rt_cal))
+            nv = novel[rest]
+            if nv.sum() >= 5:
+                # same scale as the system's other figures: % of its last observed time
+                err = np.abs(rt_cal[nv] - obs[rest][nv])
+                novel_stats.append(100 * np.nanmedian(err) / obs.max())
             cal_resid.append((f, len(rows), (ts.log_kw[m][rest] - lk_cal) / s[rest]))
             cal_cov_obs.append((lk_cal, s[rest], obs[rest], prog))
             b, a = _robust_line(logp[m][pick], obs[pick])
             logp_stats.append(system_metrics(obs[rest], a + b * logp[m][rest]))
             b2, a2 = _robust_line(base_rt[pick], obs[pick])
             gbm_stats.append(system_metrics(obs[rest], a2 + b2 * base_rt[rest]))
+        if novel_stats:
+            row["cal_novel_medae_pct"] = float(np.mean(novel_stats))
         for prefix, stats in (("cal", cal_stats), ("logp_cal", logp_stats),
                               ("gbm_cal", gbm_stats)):
             for k in ("medae_pct", "mae_pct", "medae_min", "spearman", "order_acc"):
-                row[f"{prefix}_{k}"] = float(np.nanmean([st[k] for st in stats]))
+                row[f"{prefix}_{k}"] = _nan_safe(np.nanmean, [st[k] for st in stats])
         rows.append(row)
     # calibrated interval coverage, quantiles from the other folds' calibrated residuals
     folds = np.array([c[0] for c in cal_resid])
@@ -206,7 +228,8 @@ def evaluate(ts: TrainingSet, fp: FoldPredictions, n_draws: int = 5, seed: int =
 def summarise(table: pd.DataFrame) -> dict:
     """Medians over left-out systems."""
     cols = [c for c in table.columns if c.startswith(("zero_", "cal_", "logp_cal_", "gbm_"))]
-    out = {c: float(np.nanmedian(table[c])) for c in cols if not c.endswith(("_hits", "_n"))}
+    out = {c: _nan_safe(np.nanmedian, table[c]) for c in cols
+           if not c.endswith(("_hits", "_n"))}
     out["n_systems"] = int(len(table))
     if "zero_interval_hits" in table:
         out["zero_interval_coverage_pooled"] = float(
