@@ -98,16 +98,14 @@ def _fit(kind: str, x: np.ndarray, y: np.ndarray) -> Calibration:
     offset = float(np.median(y - slope * (x - pivot)))
     if kind == "linear":
         return Calibration(kind="linear", offset=offset, slope=slope, pivot=pivot)
-    resid = y - (offset + slope * (x - pivot))
     order = np.argsort(x)
     iso = IsotonicRegression(increasing=True).fit(x[order], (y[order]))
     # monotone map = isotonic fit of y; store its difference to the linear map at knots
     kx = x[order]
     ky = iso.predict(kx) - (offset + slope * (kx - pivot))
-    # light smoothing: average with the raw residual trend (3-point running mean)
+    # light smoothing of the isotonic steps: 3-point running mean
     if ky.size >= 3:
         ky = np.convolve(np.pad(ky, 1, mode="edge"), np.ones(3) / 3, mode="valid")
-    del resid
     return Calibration(kind="monotone", offset=offset, slope=slope, pivot=pivot,
                        knots_x=tuple(map(float, kx)), knots_y=tuple(map(float, ky)))
 

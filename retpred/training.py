@@ -14,7 +14,7 @@ import numpy as np
 import pandas as pd
 
 from retpred.column import class_hsm
-from retpred.gradient import ElutionProgram, elute, log_kw_from_rt
+from retpred.gradient import elute, log_kw_from_rt
 from retpred.model import RetentionModel, Solutes, SystemContext, featurise, s_parameter
 from retpred.opendata import OpenSystem, load_compounds, load_systems
 
@@ -142,6 +142,3 @@ def predict_rows(model: RetentionModel, ts: TrainingSet, mask: np.ndarray | None
         rt[m] = elute(lk[m], s[m], ts.systems[sysi].program).rt_min
     return lk, s, rt
 
-
-def elute_on(program: ElutionProgram, log_kw: np.ndarray, s: np.ndarray) -> np.ndarray:
-    return elute(log_kw, s, program).rt_min

@@ -69,15 +69,9 @@ def predict_chunk(prep: Prepared, chunk: AnalyteChunk) -> pd.DataFrame:
 
 
 def _predict_chunks(prep: Prepared, chunks: Iterator[AnalyteChunk], jobs: int):
-    if jobs <= 1:
-        for chunk in chunks:
-            yield predict_chunk(prep, chunk)
-        return
-    from joblib import Parallel, delayed
+    from retpred.batch import chunk_results
 
-    yield from Parallel(n_jobs=jobs, return_as="generator")(
-        delayed(predict_chunk)(prep, c) for c in chunks
-    )
+    return chunk_results(prep, chunks, jobs=jobs, scheduler=None)
 
 
 def load_calibration_file(path: Path) -> Calibration:
