@@ -208,11 +208,14 @@ def evaluate(ts: TrainingSet, fp: FoldPredictions, n_draws: int = 5, seed: int =
         rows.append(row)
     # calibrated interval coverage, quantiles from the other folds' calibrated residuals
     folds = np.array([c[0] for c in cal_resid])
+    fold_q = {}
+    for f in np.unique(folds):
+        pool = np.concatenate([c[2] for c, ff in zip(cal_resid, folds, strict=True) if ff != f])
+        fold_q[f] = np.quantile(pool[np.isfinite(pool)], quantiles)
     hits = np.zeros(len(rows))
     total = np.zeros(len(rows))
     for (f, ri, _r), (lk_cal, s_r, obs_r, prog) in zip(cal_resid, cal_cov_obs, strict=True):
-        pool = np.concatenate([c[2] for c, ff in zip(cal_resid, folds, strict=True) if ff != f])
-        q_lo, q_hi = np.quantile(pool[np.isfinite(pool)], quantiles)
+        q_lo, q_hi = fold_q[f]
         lo = elute(lk_cal + q_lo * s_r, s_r, prog).rt_min
         hi = elute(lk_cal + q_hi * s_r, s_r, prog).rt_min
         hits[ri] += np.sum((obs_r >= lo) & (obs_r <= hi))
