@@ -18,7 +18,7 @@ from scipy.stats import siegelslopes, spearmanr
 from sklearn.ensemble import HistGradientBoostingRegressor
 from sklearn.model_selection import GroupKFold
 
-from retpred.calibration import fit_calibration
+from retpred.calibration import SoluteTraits, fit_calibration
 from retpred.gradient import elute
 from retpred.training import TrainingSet, fit_model
 
@@ -92,11 +92,17 @@ def _scored_systems(ts: TrainingSet):
             yield sysi, m
 
 
-def calibrate_on(pred_lk, obs_lk, obs_rt, s, prog, pick):
-    """Fit the user-facing calibration on the calibrants ``pick`` of one system."""
+def calibrate_on(pred_lk, obs_lk, obs_rt, s, prog, pick, traits=None):
+    """Fit the user-facing calibration on the calibrants ``pick`` of one system (``traits``:
+    the system's rows' :class:`SoluteTraits`, enabling the structure-aware corrections)."""
     s_pick = s[pick]
     return fit_calibration(pred_lk[pick], obs_lk[pick], obs_rt[pick],
-                           lambda v: elute(v, s_pick, prog).rt_min)
+                           lambda v: elute(v, s_pick, prog).rt_min,
+                           traits=None if traits is None else traits.take(pick))
+
+
+def row_traits(ts: TrainingSet, rows: np.ndarray) -> SoluteTraits:
+    return SoluteTraits.of(ts.solutes, ts.solute_idx[rows])
 
 
 @dataclass
@@ -161,6 +167,7 @@ def evaluate(ts: TrainingSet, fp: FoldPredictions, n_draws: int = 5, seed: int =
         other = (fp.fold != f) & np.isfinite(resid)
         q_lo, q_hi = np.quantile(resid[other], quantiles)
         pred_lk = fp.log_kw[m]
+        tr = row_traits(ts, m)
         rt_zero = elute(pred_lk, s, prog).rt_min
         row = {"dataset": system.dataset, "group": system.group, "n": m.size,
                "phase": system.phase, "organic": system.organic, "ph": system.ph,
@@ -184,8 +191,8 @@ def evaluate(ts: TrainingSet, fp: FoldPredictions, n_draws: int = 5, seed: int =
         for _ in range(n_draws):
             pick = rng.choice(m.size, N_CALIBRANTS, replace=False)
             rest = np.setdiff1d(np.arange(m.size), pick)
-            cal = calibrate_on(pred_lk, ts.log_kw[m], obs, s, prog, pick)
-            lk_cal = cal.apply(pred_lk[rest])
+            cal = calibrate_on(pred_lk, ts.log_kw[m], obs, s, prog, pick, tr)
+            lk_cal = cal.apply(pred_lk[rest], tr.take(rest))
             rt_cal = elute(lk_cal, s[rest], prog).rt_min
             cal_stats.append(system_metrics(obs[rest], rt_cal))
             nv = novel[rest]
@@ -267,8 +274,9 @@ def calibrated_residual_quantiles(ts: TrainingSet, fp: FoldPredictions, q=(0.05,
         pred = fp.log_kw[m]
         pick = rng.choice(m.size, N_CALIBRANTS, replace=False)
         rest = np.setdiff1d(np.arange(m.size), pick)
-        cal = calibrate_on(pred, ts.log_kw[m], ts.rt_min[m], s, prog, pick)
-        corr = cal.apply(pred[rest])
+        tr = row_traits(ts, m)
+        cal = calibrate_on(pred, ts.log_kw[m], ts.rt_min[m], s, prog, pick, tr)
+        corr = cal.apply(pred[rest], tr.take(rest))
         res_all.append((ts.log_kw[m][rest] - corr) / s[rest])
         rt_p = elute(corr, s[rest], prog).rt_min
         e = ts.rt_min[m][rest] - rt_p
@@ -315,7 +323,9 @@ def coelution_pairs(ts: TrainingSet, fp: FoldPredictions, q_phi: tuple[float, fl
         keep = np.arange(m.size)
         if calibrated:
             pick = rng.choice(m.size, N_CALIBRANTS, replace=False)
-            pred = calibrate_on(pred, ts.log_kw[m], ts.rt_min[m], s, prog, pick).apply(pred)
+            tr = row_traits(ts, m)
+            pred = calibrate_on(pred, ts.log_kw[m], ts.rt_min[m], s, prog, pick, tr).apply(
+                pred, tr)
             keep = np.setdiff1d(keep, pick)
         el = elute(pred[keep], s[keep], prog)
         lo = elute(pred[keep] + q_phi[0] * s[keep], s[keep], prog).rt_min
@@ -357,7 +367,10 @@ def ph_shift_agreement(ts: TrainingSet, fp: FoldPredictions, min_shift_min: floa
     program and flow (``series`` names them explicitly). For every compound on two systems
     of a series at different pH the shift (higher pH minus lower) is compared. Returns
     ``agree_obs`` (fraction right among shifts observed over ``min_shift_min``), ``n_obs``,
-    ``agree_pred`` (fraction right among shifts *predicted* over it) and ``n_pred``.
+    ``agree_pred`` (fraction right among shifts *predicted* over it), ``n_pred`` and
+    ``flat_obs`` (fraction of the observed shifts for which the model predicts no shift at
+    all, under 0.01 min: compounds without an ionisable group in the pH range, whose shift
+    comes from the buffer or additive change).
     """
     pos = {sy.dataset: i for i, sy in enumerate(ts.systems)}
     if series is None:
@@ -390,14 +403,16 @@ def ph_shift_agreement(ts: TrainingSet, fp: FoldPredictions, min_shift_min: floa
                 pj = elute(fp.log_kw[rj], ts.s[rj], ts.systems[j].program).rt_min
                 d_pred_all.append(pj - pi)
     if not d_obs_all:
-        return {"agree_obs": float("nan"), "n_obs": 0, "agree_pred": float("nan"), "n_pred": 0}
+        return {"agree_obs": float("nan"), "n_obs": 0, "agree_pred": float("nan"), "n_pred": 0,
+                "flat_obs": float("nan")}
     do, dp = np.concatenate(d_obs_all), np.concatenate(d_pred_all)
     same = np.sign(do) == np.sign(dp)
     big_o, big_p = np.abs(do) > min_shift_min, np.abs(dp) > min_shift_min
     return {"agree_obs": float(same[big_o].mean()) if big_o.any() else float("nan"),
             "n_obs": int(big_o.sum()),
             "agree_pred": float(same[big_p].mean()) if big_p.any() else float("nan"),
-            "n_pred": int(big_p.sum())}
+            "n_pred": int(big_p.sum()),
+            "flat_obs": float(np.mean(np.abs(dp[big_o]) < 0.01)) if big_o.any() else float("nan")}
 
 def rescore_pairs(pairs: pd.DataFrame, scale: float) -> pd.DataFrame:
     """The same pairs with the spacing sd multiplied by ``scale``."""

@@ -5,9 +5,12 @@ engine on its own method) is compared with the open-data prediction. The correct
 
     log kw_lab = a + b (log kw_open - pivot) + h(solute, log kw_open)
 
-with ``a, b`` a robust (repeated-median) line and ``h`` a small, strongly regularised
-gradient-boosting model of what is left. Both are chosen against the shipped model by
-5-fold cross-validation over compounds, and the figures are reported side by side.
+with ``a, b`` a robust (repeated-median) line and ``h`` either a small, strongly regularised
+gradient-boosting model of what is left, or the neighbour correction of
+``retpred.calibration`` (each lab compound's residual shared with structurally similar
+analytes by count-fingerprint Tanimoto similarity), or nothing (the shipped model, or it
+shifted). The simplest candidate within 5 % of the smallest 5-fold cross-validated error
+over compounds is used, and the figures are reported side by side with the shipped model's.
 """
 
 from __future__ import annotations
@@ -21,30 +24,57 @@ from scipy.stats import siegelslopes
 from sklearn.ensemble import HistGradientBoostingRegressor
 from sklearn.model_selection import KFold
 
+from retpred.calibration import neighbour_correction
 from retpred.errors import InputError
 from retpred.gradient import elute, log_kw_from_rt
 from retpred.io import atomic_output_path, read_training_data
 from retpred.method import load_method
-from retpred.model import data_fingerprint, featurise, now_utc, solute_matrix
+from retpred.model import (
+    FINGERPRINT_COLUMNS,
+    data_fingerprint,
+    featurise,
+    now_utc,
+    solute_matrix,
+)
 from retpred.modelfile import default_model_path, load_model, save_model, sha256_file
 from retpred.predict import prepare
 
 MIN_COMPOUNDS = 20
 
 
-def _fit_correction(base: np.ndarray, obs: np.ndarray, x: np.ndarray, with_gbm: bool):
+CORRECTIONS = ("lab_linear", "lab_model", "lab_neighbours")
+#: Also candidates: the shipped model unchanged, or shifted (when the lab's data show that
+#: the shipped model is already as good as any correction of it).
+#: In order of complexity; the simplest within ``SELECT_TOLERANCE`` of the best CV error is
+#: used (a parsimony rule in the spirit of the one-standard-error rule: small CV gains of a
+#: more flexible correction do not survive new compounds).
+CANDIDATES = ("shipped_zero_shot", "shipped_calibrated", "lab_linear", "lab_neighbours",
+              "lab_model")
+SELECT_TOLERANCE = 0.05
+
+
+def _fit_correction(base: np.ndarray, obs: np.ndarray, x: np.ndarray, kind: str):
+    """``kind``: 'lab_linear' (line only), 'lab_model' (line + GBM), 'lab_neighbours',
+    'shipped_calibrated' (shift only) or 'shipped_zero_shot' (identity)."""
+    if kind == "shipped_zero_shot":
+        return {"offset": 0.0, "slope": 1.0, "pivot": 0.0}, None
+    if kind == "shipped_calibrated":
+        return {"offset": float(np.median(obs - base)), "slope": 1.0, "pivot": 0.0}, None
     pivot = float(np.median(base))
     res = siegelslopes(obs, base) if np.ptp(base) > 0 else None
     slope = float(np.clip(res.slope, 0.5, 2.0)) if res is not None else 1.0
     offset = float(np.median(obs - slope * (base - pivot)))
     lin = {"offset": offset, "slope": slope, "pivot": pivot}
     gbm = None
-    if with_gbm:
-        resid = obs - (offset + slope * (base - pivot))
+    resid = obs - (offset + slope * (base - pivot))
+    if kind == "lab_model":
         gbm = HistGradientBoostingRegressor(
             max_iter=150, learning_rate=0.05, max_leaf_nodes=8, min_samples_leaf=5,
             l2_regularization=2.0, random_state=0,
         ).fit(np.column_stack([x, base]), resid)
+    elif kind == "lab_neighbours":
+        lin["neighbours"] = {"fingerprints": x[:, FINGERPRINT_COLUMNS].astype(int).tolist(),
+                             "residuals": resid.tolist()}
     return lin, gbm
 
 
@@ -52,6 +82,10 @@ def _apply(lin, gbm, base, x):
     out = lin["offset"] + lin["slope"] * (base - lin["pivot"])
     if gbm is not None:
         out = out + gbm.predict(np.column_stack([x, base]))
+    nb = lin.get("neighbours")
+    if nb:
+        out = out + neighbour_correction(x[:, FINGERPRINT_COLUMNS], np.asarray(nb["fingerprints"]),
+                                         np.asarray(nb["residuals"]))
     return out
 
 
@@ -112,20 +146,21 @@ def train_lab_model(
         return res
 
     folds = KFold(n_splits=5, shuffle=True, random_state=0)
-    errs = {"shipped_zero_shot": [], "shipped_calibrated": [], "lab_linear": [], "lab_model": []}
+    errs = {"shipped_zero_shot": [], "shipped_calibrated": [], **{k: [] for k in CORRECTIONS}}
     for tr, te in folds.split(idx):
         obs_rt = rt[idx][te]
         errs["shipped_zero_shot"].append(np.abs(rt_of(b[te], te) - obs_rt))
         shift = float(np.median(o[tr] - b[tr]))
         errs["shipped_calibrated"].append(np.abs(rt_of(b[te] + shift, te) - obs_rt))
-        lin, _ = _fit_correction(b[tr], o[tr], x[tr], with_gbm=False)
-        errs["lab_linear"].append(np.abs(rt_of(_apply(lin, None, b[te], x[te]), te) - obs_rt))
-        lin, gbm = _fit_correction(b[tr], o[tr], x[tr], with_gbm=True)
-        errs["lab_model"].append(np.abs(rt_of(_apply(lin, gbm, b[te], x[te]), te) - obs_rt))
+        for kind in CORRECTIONS:
+            lin, gbm = _fit_correction(b[tr], o[tr], x[tr], kind)
+            errs[kind].append(np.abs(rt_of(_apply(lin, gbm, b[te], x[te]), te) - obs_rt))
     metrics = {k: float(np.nanmedian(np.concatenate(v))) for k, v in errs.items()}
-    use_gbm = metrics["lab_model"] <= metrics["lab_linear"]
-    lin, gbm = _fit_correction(b, o, x, with_gbm=use_gbm)
+    lowest = min(metrics[k] for k in CANDIDATES)
+    best = next(k for k in CANDIDATES if metrics[k] <= (1 + SELECT_TOLERANCE) * lowest)
+    lin, gbm = _fit_correction(b, o, x, best)
     lab = copy.copy(base)
+    lab.lab_neighbours_ = lin.pop("neighbours", None)
     lab.lab_linear_ = lin
     lab.lab_gbm_ = gbm
     lab.meta_ = {
@@ -135,7 +170,10 @@ def train_lab_model(
         "lab_training_sha256": data_fingerprint(*(Path(p).read_bytes() for p in data)),
         "lab_n_compounds": n_ok,
         "lab_cv_median_abs_error_min": metrics,
-        "lab_correction": "linear + gradient boosting" if use_gbm else "linear",
+        "lab_correction": {"lab_linear": "linear", "lab_model": "linear + gradient boosting",
+                           "lab_neighbours": "linear + neighbours",
+                           "shipped_calibrated": "shift of the shipped model",
+                           "shipped_zero_shot": "none (the shipped model was best)"}[best],
         "base_model_sha256": sha256_file(Path(base.meta_.get("path", default_model_path()))),
     }
     with atomic_output_path(out, force=force, inputs=inputs) as tmp:

@@ -47,7 +47,7 @@ from retpred.method import HsmParameters
 from retpred.structures import StandardisedBatch, standardise_mols, standardise_smiles
 
 #: Model-file format version; a file of another format is refused.
-MODEL_FORMAT = 1
+MODEL_FORMAT = 2
 N_BITS = 256
 #: Snyder and Dolan's rule of thumb S = 0.25 M^0.5 (retention-physics.md section 2).
 S_RULE_COEF = 0.25
@@ -126,7 +126,8 @@ def ion_term(ion: Ionisation, drop_acid: float, drop_base: float) -> np.ndarray:
 COLUMN_TERM_NAMES = (
     "dH", "dH*logp", "dS*", "dS*x bulk", "dA", "dA*hba", "dB", "dB*hbd", "dC*cation",
     "d(1/T)", "d(1/T)*logp", "methanol", "methanol*logp", "methanol*tpsa", "methanol*hbd",
-    "cation", "anion",
+    "cation", "anion", "cation*anion", "cation*logp", "anion*logp", "methanol*cation",
+    "methanol*anion", "ionised fraction",
 )
 
 
@@ -154,10 +155,18 @@ def column_features(
     me = ctx_arrays["meoh"]
     cation = ion.positive_charge
     anion = ion.negative_charge
+    # smooth charge terms beside the species-weighted ion term: zwitterions (both charges),
+    # ion drops that depend on the solute's hydrophobicity and on the modifier
     return np.column_stack(
         [dh, dh * logp, ds, ds * bulk, da, da * hba, db, db * hbd, dc * cation,
-         dt, dt * logp, me, me * logp, me * tpsa, me * hbd, cation, anion]
+         dt, dt * logp, me, me * logp, me * tpsa, me * hbd, cation, anion,
+         cation * anion, cation * logp, anion * logp, me * cation, me * anion,
+         1.0 - ion.f_neutral]
     )
+
+
+#: Columns of ``solute_matrix`` that hold the count fingerprint.
+FINGERPRINT_COLUMNS = slice(len(DESCRIPTOR_NAMES), len(DESCRIPTOR_NAMES) + N_BITS)
 
 
 def solute_matrix(solutes: Solutes, idx: np.ndarray, meoh: np.ndarray) -> np.ndarray:
@@ -211,6 +220,9 @@ class RetentionModel:
     domain_: dict = field(default_factory=dict)
     lab_linear_: dict | None = None
     lab_gbm_: HistGradientBoostingRegressor | None = None
+    #: lab neighbour correction: {"fingerprints": [[...]], "residuals": [...]} of the lab's
+    #: compounds after the linear map (``retpred.calibration.neighbour_correction``) or None
+    lab_neighbours_: dict | None = None
 
     # --- prediction ------------------------------------------------------------------
     def retention_parameters(
@@ -251,6 +263,13 @@ class RetentionModel:
         out = lin["offset"] + lin["slope"] * (pred - lin["pivot"])
         if self.lab_gbm_ is not None:
             out = out + self.lab_gbm_.predict(np.column_stack([x, pred]))
+        if self.lab_neighbours_:
+            from retpred.calibration import neighbour_correction
+
+            nb = self.lab_neighbours_
+            out = out + neighbour_correction(x[:, FINGERPRINT_COLUMNS],
+                                             np.asarray(nb["fingerprints"], dtype=float),
+                                             np.asarray(nb["residuals"], dtype=float))
         return out
 
     def _fixed_terms(self, arr: dict, ion: Ionisation) -> np.ndarray:

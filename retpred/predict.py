@@ -13,7 +13,7 @@ from dataclasses import dataclass
 import numpy as np
 import pandas as pd
 
-from retpred.calibration import Calibration, coverage_warning, fit_calibration
+from retpred.calibration import Calibration, SoluteTraits, coverage_warning, fit_calibration
 from retpred.chemistry import ionise, log_d
 from retpred.column import column_hsm, dead_time_min, plate_number
 from retpred.gradient import STATUS_OK, ElutionProgram, elute, log_kw_from_rt, program_from_method
@@ -79,7 +79,7 @@ def retention(prep: Prepared, solutes: Solutes) -> tuple[np.ndarray, np.ndarray]
     """Calibrated ``(log kw, S)`` of a batch on the prepared method."""
     log_kw, s = prep.model.retention_parameters(solutes, prep.context)
     if prep.calibration is not None:
-        log_kw = prep.calibration.apply(log_kw)
+        log_kw = prep.calibration.apply(log_kw, SoluteTraits.of(solutes))
     return log_kw, s
 
 
@@ -195,7 +195,8 @@ def calibrate(
         return elute(lk, s, prep.program).rt_min
 
     return fit_calibration(
-        log_kw, obs, rt_obs, rt_of, names=list(names), method_summary=method_summary(prep.method)
+        log_kw, obs, rt_obs, rt_of, names=list(names), method_summary=method_summary(prep.method),
+        traits=SoluteTraits.of(sol),
     )
 
 

@@ -32,7 +32,7 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from retpred.calibration import Calibration
+from retpred.calibration import Calibration, SoluteTraits
 from retpred.chemistry import Ionisation, SiteTable, ionise
 from retpred.column import (
     column_hsm,
@@ -322,7 +322,7 @@ def retention_grid(
             lk, _ = model.retention_parameters(solutes, list(contexts), which=which,
                                                idx=np.tile(np.arange(n), k))
             grid = lk.reshape(k, n)
-    log_kw = grid if calibration is None else calibration.apply(grid)
+    log_kw = grid if calibration is None else calibration.apply(grid, SoluteTraits.of(solutes))
     return log_kw, s, ion_kn
 
 

@@ -85,6 +85,7 @@ def main(argv=None) -> int:
     summary["ph_shift_sign_agreement"] = ph["agree_obs"]
     summary["ph_shift_n"] = ph["n_obs"]
     summary["ph_shift_sign_agreement_predicted"] = ph["agree_pred"]
+    summary["ph_shift_flat_share"] = ph["flat_obs"]
     print(f"cross-validated ({time.perf_counter() - t_start:.0f} s)")
     print(risk_table.to_string())
     if args.validate_only:
@@ -191,7 +192,16 @@ def model_card(summary: dict, meta: dict, table, sha: str, seconds: float) -> st
 {rows}
 
 pH series: the predicted shift follows the observed one in sign for
-{f('ph_shift_sign_agreement', 3)} of {summary.get('ph_shift_n')} compound shifts over 0.5 min.
+{f('ph_shift_sign_agreement', 3)} of {summary.get('ph_shift_n')} compound shifts over 0.5 min
+({f('ph_shift_sign_agreement_predicted', 3)} where the model itself predicts a shift over
+0.5 min). For {f('ph_shift_flat_share', 3)} of the observed shifts the model predicts none:
+compounds without an ionisable group in the pH range, whose shift follows the change of
+buffer or additive (e.g. trifluoroacetic acid against formic acid), which the model does
+not describe; they count as misses.
+
+Calibration (the 10-calibrant figures): shift, linear, selectivity (log P and TPSA terms)
+and monotone maps of the predicted log kw, chosen by leave-one-out error in time, then a
+fingerprint-similarity neighbour correction (`retpred/calibration.py`).
 
 Ratio of calibrated MedAE to the descriptor baseline: {f('ratio_cal_vs_gbm_cal', 2)};
 to the log P baseline: {f('ratio_cal_vs_logp_cal', 2)}. Per-system figures:

@@ -78,7 +78,8 @@ def hh_model(small_model):
     only through the species-weighted Henderson-Hasselbalch term (the closed-form case)."""
     m = copy.deepcopy(small_model)
     coef = m.ridge_.coef_.copy()
-    for name in ("cation", "anion", "dC*cation"):
+    for name in ("cation", "anion", "dC*cation", "cation*anion", "cation*logp", "anion*logp",
+                 "methanol*cation", "methanol*anion", "ionised fraction"):
         coef[COLUMN_TERM_NAMES.index(name)] = 0.0
     m.ridge_.coef_ = coef
     return m
