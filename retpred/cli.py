@@ -86,6 +86,10 @@ def predict(
     scheduler: Annotated[
         str | None, typer.Option(help="Dask scheduler address for a cluster run.")
     ] = None,
+    cache: Annotated[
+        Path | None, typer.Option(help="Feature cache directory for repeated runs on the "
+                                  "same library (default: $RETPRED_CACHE_DIR if set).")
+    ] = None,
     force: ForceOpt = False,
     quiet: QuietOpt = False,
 ) -> None:
@@ -97,7 +101,7 @@ def predict(
         workflow.run_predict(
             analytes, method, calibrants=calibrants, calibration=calibration, model=model,
             out=out, plot=plot, jobs=jobs, chunk_size=chunk_size, force=force, quiet=quiet,
-            scheduler=scheduler,
+            scheduler=scheduler, cache_dir=cache,
         )
 
     _run(body)

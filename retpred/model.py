@@ -250,7 +250,10 @@ class RetentionModel:
             z = column_features(solutes, idx, arr, ion, self.reference)
             x = solute_matrix(solutes, idx, arr["meoh"])
             lin = np.column_stack([z[ok], solutes.descriptors[idx][ok]])
-            pred = self.gbm_.predict(x[ok]) + self.ridge_.predict(lin) + fixed[ok]
+            # einsum, not BLAS: the result must not depend on the batch size (exact ties
+            # between identical structures decide elution order in every run mode)
+            ridge = np.einsum("ij,j->i", lin, self.ridge_.coef_) + self.ridge_.intercept_
+            pred = self.gbm_.predict(x[ok]) + ridge + fixed[ok]
             if self.lab_linear_ is not None:
                 pred = self.apply_lab(pred, x[ok])
             log_kw[ok] = pred

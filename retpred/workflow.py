@@ -49,23 +49,11 @@ def check_outputs(outputs: Sequence[Path | None], inputs: Sequence[Path | None],
         seen.add(key)
 
 
-def _solutes_of(chunk: AnalyteChunk):
-    if chunk.mols is not None:
-        return featurise(mols=chunk.mols)
-    return featurise(smiles=[s if e is None else "" for s, e in
-                             zip(chunk.smiles, chunk.error, strict=True)])
-
-
 def predict_chunk(prep: Prepared, chunk: AnalyteChunk) -> pd.DataFrame:
     """Rows of one chunk (pair columns are added once over the whole list)."""
-    sol = _solutes_of(chunk)
-    table = predict_solutes(prep, sol, chunk.name, read_errors=chunk.error)
-    table["smiles"] = chunk.smiles
-    for col, values in chunk.extra.items():
-        name = col if col not in table.columns else f"input_{col}"
-        table[name] = values
-    table.insert(0, "line", chunk.line)
-    return table
+    from retpred.batch import predict_piece
+
+    return predict_piece(prep, chunk)[0]
 
 
 def _predict_chunks(prep: Prepared, chunks: Iterator[AnalyteChunk], jobs: int):
@@ -128,16 +116,20 @@ def predict_table(
 def run_predict(
     analytes: Path, method_path: Path, *, calibrants=None, calibration=None, model=None,
     out=None, plot=None, jobs: int = 1, chunk_size: int = 5000, force: bool = False,
-    quiet: bool = False, scheduler=None,
+    quiet: bool = False, scheduler=None, cache_dir=None,
 ) -> pd.DataFrame:
+    """The ``predict`` command. ``cache_dir``: feature cache directory (None: the
+    ``RETPRED_CACHE_DIR`` environment variable if set, else no cache)."""
+    from retpred.batch import local_processes, stream_predict, warm_workers
+
     inputs = [analytes, method_path, calibrants, calibration, model]
     check_outputs([out, plot], inputs, force)
+    if scheduler is None and local_processes(jobs) > 1:
+        warm_workers(jobs)  # workers import the library while the model loads
     method, mdl, prep = prepared_run(method_path, model, calibrants, calibration)
-    from retpred.batch import stream_predict
-
     summary = stream_predict(prep, analytes, out, chunk_size=chunk_size, jobs=jobs,
                              scheduler=scheduler, force=force, inputs=inputs,
-                             progress=not quiet)
+                             progress=not quiet, cache_dir=cache_dir)
     table = summary.table if summary.table is not None else summary.preview
     notes = list(method.warnings)
     if prep.calibration is not None:
@@ -156,6 +148,8 @@ def run_predict(
     else:
         notes.append("not calibrated: times are zero-shot estimates for this system "
                      "(give --calibrants with a few measured standards to correct them)")
+    if summary.cache_note:
+        notes.append(summary.cache_note)
     if summary.n_failed:
         notes.append(f"{summary.n_failed} of {summary.n_rows} row(s) without a predicted time; "
                      "see their status")

@@ -9,6 +9,7 @@ missing SMILES, too many fields). The run happens in a child process (as the com
 would) and its peak resident memory is read with getrusage.
 
 Usage: python scripts/soak.py [--rows 1000000] [--garbage 0.05] [--jobs 1] [--model PATH]
+       [--cache DIR]
 """
 
 from __future__ import annotations
@@ -89,14 +90,16 @@ def make_input(path: Path, n_rows: int, smiles: list[str], garbage: float = 0.0,
     return np.asarray(lines, dtype=np.int64)
 
 
-def run_child(prep_pickle: Path, analytes: Path, out: Path, jobs: int, chunk_size: int) -> dict:
-    """Run the streamed prediction in a child process; peak RSS from getrusage."""
+def run_child(prep_pickle: Path, analytes: Path, out: Path, jobs: int, chunk_size: int,
+              cache_dir: Path | None = None) -> dict:
+    """Run the streamed prediction in a child process (feature cache in ``cache_dir`` if
+    given); peak RSS from getrusage."""
     import json
     import resource
     import subprocess
 
     cmd = [sys.executable, str(HERE / "bench_throughput.py"), "--child", str(prep_pickle),
-           str(analytes), str(out), str(jobs), str(chunk_size)]
+           str(analytes), str(out), str(jobs), str(chunk_size), str(cache_dir or "")]
     t0 = time.perf_counter()
     res = subprocess.run(cmd, capture_output=True, text=True, check=False)
     wall = time.perf_counter() - t0
@@ -134,6 +137,7 @@ def main() -> None:
     ap.add_argument("--chunk-size", type=int, default=5000)
     ap.add_argument("--model", type=Path, default=None)
     ap.add_argument("--workdir", type=Path, default=None)
+    ap.add_argument("--cache", type=Path, default=None, help="feature cache directory")
     args = ap.parse_args()
     with tempfile.TemporaryDirectory(dir=args.workdir) as tmp:
         tmp = Path(tmp)
@@ -144,7 +148,7 @@ def main() -> None:
         print(f"input: {args.rows} rows ({garbage_lines.size} garbage) cycling {len(smiles)} "
               f"SMILES from {origin}; model: {model_note}", flush=True)
         info = run_child(save_prep(prep, tmp), analytes, tmp / "out.csv", args.jobs,
-                         args.chunk_size)
+                         args.chunk_size, args.cache)
         rows, reported, others = check_reported(tmp / "out.csv", garbage_lines)
     print(f"rows written: {rows} of {args.rows}")
     print(f"garbage rows reported (no time, status given): {reported} of {garbage_lines.size}")
