@@ -127,10 +127,6 @@ class Calibration:
     warnings: tuple[str, ...] = ()
     method_summary: str = ""
 
-    @property
-    def needs_traits(self) -> bool:
-        return self.kind == "selectivity" or bool(self.nb_residuals)
-
     def apply(self, log_kw_pred: np.ndarray, traits: SoluteTraits | None = None) -> np.ndarray:
         """Corrected ``log kw`` (last axis: analytes, aligned with ``traits``).
 

@@ -65,12 +65,13 @@ ModelOpt = Annotated[
     Path | None, typer.Option("--model", help="Model file (default: the shipped model).")
 ]
 ForceOpt = Annotated[bool, typer.Option("--force", help="Replace existing output files.")]
+AnalytesArg = Annotated[Path, typer.Argument(help="CSV/TSV with a smiles column, .smi or .sdf")]
 QuietOpt = Annotated[bool, typer.Option("--quiet", "-q", help="No table or progress output.")]
 
 
 @app.command()
 def predict(
-    analytes: Annotated[Path, typer.Argument(help="CSV/TSV with a smiles column, .smi or .sdf")],
+    analytes: AnalytesArg,
     method: MethodOpt,
     calibrants: Annotated[
         Path | None, typer.Option(help="Measured reference compounds: smiles, rt_min[, name].")
@@ -133,7 +134,7 @@ def demo(
 
 @app.command()
 def columns(
-    analytes: Annotated[Path, typer.Argument(help="CSV/TSV with a smiles column, .smi or .sdf")],
+    analytes: AnalytesArg,
     method: MethodOpt,
     phases: Annotated[
         str | None, typer.Option(help="Comma-separated phase classes (default: all built-in).")
@@ -156,7 +157,7 @@ def columns(
 
 @app.command()
 def scan(
-    analytes: Annotated[Path, typer.Argument(help="CSV/TSV with a smiles column, .smi or .sdf")],
+    analytes: AnalytesArg,
     method: MethodOpt,
     ph: Annotated[
         str | None, typer.Option(help="pH range start:stop:step, e.g. 2:8:0.1")

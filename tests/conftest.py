@@ -68,3 +68,12 @@ def rng(seed=0):
 @pytest.fixture(scope="session")
 def demo_dir() -> Path:
     return DEMO
+
+
+@pytest.fixture(scope="module")
+def prep(small_model, demo_dir):
+    """The demo method prepared with the small test model."""
+    from retpred.method import load_method
+    from retpred.predict import prepare
+
+    return prepare(load_method(demo_dir / "method.toml"), small_model)

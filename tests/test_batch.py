@@ -22,9 +22,7 @@ import pytest
 
 from retpred.batch import stream_predict, whole_list_pairs
 from retpred.errors import InputError
-from retpred.method import load_method
 from retpred.peaks import neighbour_pairs
-from retpred.predict import prepare
 from retpred.report import write_csv
 from retpred.workflow import predict_table
 
@@ -37,11 +35,6 @@ def _soak_module():
     mod = importlib.util.module_from_spec(spec)
     spec.loader.exec_module(mod)
     return mod
-
-
-@pytest.fixture(scope="module")
-def prep(small_model, demo_dir):
-    return prepare(load_method(demo_dir / "method.toml"), small_model)
 
 
 @pytest.fixture(scope="module")

@@ -21,16 +21,9 @@ import pytest
 import retpred.cache as rc
 from retpred.batch import stream_predict
 from retpred.cache import FeatureCache, cache_version, combine_solutes, featurise_known
-from retpred.method import load_method
 from retpred.model import featurise
-from retpred.predict import prepare
 
 pytestmark = pytest.mark.opendata
-
-
-@pytest.fixture(scope="module")
-def prep(small_model, demo_dir):
-    return prepare(load_method(demo_dir / "method.toml"), small_model)
 
 
 @pytest.fixture(scope="module")
