@@ -370,7 +370,9 @@ def ph_shift_agreement(ts: TrainingSet, fp: FoldPredictions, min_shift_min: floa
     ``agree_pred`` (fraction right among shifts *predicted* over it), ``n_pred`` and
     ``flat_obs`` (fraction of the observed shifts for which the model predicts no shift at
     all, under 0.01 min: compounds without an ionisable group in the pH range, whose shift
-    comes from the buffer or additive change).
+    comes from the buffer or additive change), and ``agree_ionising`` / ``n_ionising``: the
+    same as ``agree_obs`` restricted to compounds whose neutral fraction (Henderson-
+    Hasselbalch on the chemistry layer's sites) changes by more than 0.05 between the two pH.
     """
     pos = {sy.dataset: i for i, sy in enumerate(ts.systems)}
     if series is None:
@@ -387,7 +389,10 @@ def ph_shift_agreement(ts: TrainingSet, fp: FoldPredictions, min_shift_min: floa
         members_list = list(groups.values())
     else:
         members_list = [[pos[d] for d in sorted(g) if d in pos] for g in series]
-    d_obs_all, d_pred_all = [], []
+    from retpred.chemistry import ionise
+    from retpred.model import _take_sites
+
+    d_obs_all, d_pred_all, d_f0_all = [], [], []
     for members in members_list:
         for i in members:
             for j in members:
@@ -402,17 +407,25 @@ def ph_shift_agreement(ts: TrainingSet, fp: FoldPredictions, min_shift_min: floa
                 pi = elute(fp.log_kw[ri], ts.s[ri], ts.systems[i].program).rt_min
                 pj = elute(fp.log_kw[rj], ts.s[rj], ts.systems[j].program).rt_min
                 d_pred_all.append(pj - pi)
+                sites = _take_sites(ts.solutes.sites, ts.solute_idx[ri])
+                f0 = [ionise(sites, np.full(ri.size, ts.systems[k].ph)).f_neutral for k in (i, j)]
+                d_f0_all.append(np.abs(f0[1] - f0[0]))
+    nan = float("nan")
     if not d_obs_all:
-        return {"agree_obs": float("nan"), "n_obs": 0, "agree_pred": float("nan"), "n_pred": 0,
-                "flat_obs": float("nan")}
+        return {"agree_obs": nan, "n_obs": 0, "agree_pred": nan, "n_pred": 0,
+                "flat_obs": nan, "agree_ionising": nan, "n_ionising": 0}
     do, dp = np.concatenate(d_obs_all), np.concatenate(d_pred_all)
+    ionising = np.concatenate(d_f0_all) > 0.05
     same = np.sign(do) == np.sign(dp)
     big_o, big_p = np.abs(do) > min_shift_min, np.abs(dp) > min_shift_min
     return {"agree_obs": float(same[big_o].mean()) if big_o.any() else float("nan"),
             "n_obs": int(big_o.sum()),
             "agree_pred": float(same[big_p].mean()) if big_p.any() else float("nan"),
             "n_pred": int(big_p.sum()),
-            "flat_obs": float(np.mean(np.abs(dp[big_o]) < 0.01)) if big_o.any() else float("nan")}
+            "flat_obs": float(np.mean(np.abs(dp[big_o]) < 0.01)) if big_o.any() else nan,
+            "agree_ionising": (float(same[big_o & ionising].mean()) if (big_o & ionising).any()
+                               else nan),
+            "n_ionising": int((big_o & ionising).sum())}
 
 def rescore_pairs(pairs: pd.DataFrame, scale: float) -> pd.DataFrame:
     """The same pairs with the spacing sd multiplied by ``scale``."""
