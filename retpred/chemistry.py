@@ -232,6 +232,11 @@ class SiteTable:
     def __len__(self) -> int:
         return self.pka.shape[0]
 
+    def take(self, idx: np.ndarray) -> SiteTable:
+        """The rows ``idx`` (repeats allowed), as a new table."""
+        return SiteTable(pka=self.pka[idx], kind=self.kind[idx],
+                         group=[self.group[i] for i in idx])
+
     def describe(self, i: int) -> str:
         """'group:pKa;group:pKa' for molecule ``i`` ('perm' for permanent charges)."""
         parts = []

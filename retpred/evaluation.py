@@ -19,6 +19,7 @@ from sklearn.ensemble import HistGradientBoostingRegressor
 from sklearn.model_selection import GroupKFold
 
 from retpred.calibration import SoluteTraits, fit_calibration
+from retpred.chemistry import ionise
 from retpred.gradient import elute
 from retpred.training import TrainingSet, fit_model
 
@@ -389,9 +390,6 @@ def ph_shift_agreement(ts: TrainingSet, fp: FoldPredictions, min_shift_min: floa
         members_list = list(groups.values())
     else:
         members_list = [[pos[d] for d in sorted(g) if d in pos] for g in series]
-    from retpred.chemistry import ionise
-    from retpred.model import _take_sites
-
     d_obs_all, d_pred_all, d_f0_all = [], [], []
     for members in members_list:
         for i in members:
@@ -407,7 +405,7 @@ def ph_shift_agreement(ts: TrainingSet, fp: FoldPredictions, min_shift_min: floa
                 pi = elute(fp.log_kw[ri], ts.s[ri], ts.systems[i].program).rt_min
                 pj = elute(fp.log_kw[rj], ts.s[rj], ts.systems[j].program).rt_min
                 d_pred_all.append(pj - pi)
-                sites = _take_sites(ts.solutes.sites, ts.solute_idx[ri])
+                sites = ts.solutes.sites.take(ts.solute_idx[ri])
                 f0 = [ionise(sites, np.full(ri.size, ts.systems[k].ph)).f_neutral for k in (i, j)]
                 d_f0_all.append(np.abs(f0[1] - f0[0]))
     nan = float("nan")
@@ -418,9 +416,9 @@ def ph_shift_agreement(ts: TrainingSet, fp: FoldPredictions, min_shift_min: floa
     ionising = np.concatenate(d_f0_all) > 0.05
     same = np.sign(do) == np.sign(dp)
     big_o, big_p = np.abs(do) > min_shift_min, np.abs(dp) > min_shift_min
-    return {"agree_obs": float(same[big_o].mean()) if big_o.any() else float("nan"),
+    return {"agree_obs": float(same[big_o].mean()) if big_o.any() else nan,
             "n_obs": int(big_o.sum()),
-            "agree_pred": float(same[big_p].mean()) if big_p.any() else float("nan"),
+            "agree_pred": float(same[big_p].mean()) if big_p.any() else nan,
             "n_pred": int(big_p.sum()),
             "flat_obs": float(np.mean(np.abs(dp[big_o]) < 0.01)) if big_o.any() else nan,
             "agree_ionising": (float(same[big_o & ionising].mean()) if (big_o & ionising).any()

@@ -245,7 +245,7 @@ class RetentionModel:
         else:
             contexts = list(ctx)
         arr = context_arrays(contexts, which)
-        ion = ionise(_take_sites(solutes.sites, idx), arr["ph"])
+        ion = ionise(solutes.sites.take(idx), arr["ph"])
         log_kw = np.full(idx.size, np.nan)
         s = s_parameter(solutes.mw[idx])
         ok = solutes.usable[idx] & np.all(np.isfinite(solutes.descriptors[idx]), axis=1)
@@ -296,7 +296,7 @@ class RetentionModel:
         what is left. Returns ``self``.
         """
         arr = context_arrays(contexts, which)
-        ion = ionise(_take_sites(solutes.sites, idx), arr["ph"])
+        ion = ionise(solutes.sites.take(idx), arr["ph"])
         y = log_kw_obs - self._fixed_terms(arr, ion)
         z = column_features(solutes, idx, arr, ion, self.reference)
         x = solute_matrix(solutes, idx, arr["meoh"])
@@ -358,12 +358,6 @@ def mahalanobis(descriptors: np.ndarray, domain: dict) -> np.ndarray:
     diff = descriptors - np.asarray(domain["mean"])
     icov = np.asarray(domain["icov"])
     return np.sqrt(np.maximum(np.einsum("ij,jk,ik->i", diff, icov, diff), 0.0))
-
-
-def _take_sites(sites: SiteTable, idx: np.ndarray) -> SiteTable:
-    return SiteTable(
-        pka=sites.pka[idx], kind=sites.kind[idx], group=[sites.group[i] for i in idx]
-    )
 
 
 def data_fingerprint(*parts: bytes | str) -> str:

@@ -33,7 +33,7 @@ import numpy as np
 import pandas as pd
 
 from retpred.calibration import Calibration, SoluteTraits
-from retpred.chemistry import Ionisation, SiteTable, ionise
+from retpred.chemistry import Ionisation, ionise
 from retpred.column import (
     column_hsm,
     dead_time_min,
@@ -337,9 +337,8 @@ def _fast_grid(model: RetentionModel, solutes: Solutes, contexts: list[SystemCon
     which = np.repeat(np.arange(k), m)
     idx = np.tile(okidx, k)
     arr = context_arrays(contexts, which)
-    sub = SiteTable(pka=solutes.sites.pka[okidx], kind=solutes.sites.kind[okidx],
-                    group=[solutes.sites.group[i] for i in okidx])
-    ion = _flat_ionisation(ionise(sub, np.array([c.ph for c in contexts])[:, None]))
+    ph_k = np.array([c.ph for c in contexts])[:, None]
+    ion = _flat_ionisation(ionise(solutes.sites.take(okidx), ph_k))
     z = column_features(solutes, idx, arr, ion, model.reference)
     n_in = getattr(model.ridge_, "n_features_in_", z.shape[1])
     # the ridge sees the HSM-style terms, or those plus the descriptor main effects
