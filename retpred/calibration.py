@@ -21,8 +21,9 @@ map: each calibrant's remaining residual ``r_j`` is shared with structurally sim
 ``delta = sum_j w_j r_j / (sum_j w_j + kappa)``, ``w_j = exp((T_j - 1) / tau)`` with ``T`` the
 count-fingerprint Tanimoto (min/max) similarity, ``tau = 0.2``, ``kappa = 0.5`` (a kernel
 smoother shrunk towards zero; an analyte unlike every calibrant gets almost nothing).
-Measured on the open data (283 left-out systems, 10 random calibrants): median error
-3.56 % of the run with shift/linear/monotone only, 3.40 % with both additions.
+Measured on the open data (283 left-out systems, 10 random calibrants), on the model of
+session 2: median error 3.56 % of the run with shift/linear/monotone only, 3.40 % with both
+additions. The current model's figure is on the model card (``models/MODEL_CARD.md``).
 
 Warnings: calibrants covering only part of the elution window of the analytes, and a
 calibrant whose leave-one-out error is an outlier (over 3 robust standard deviations and

@@ -374,6 +374,9 @@ def ph_shift_agreement(ts: TrainingSet, fp: FoldPredictions, min_shift_min: floa
     comes from the buffer or additive change), and ``agree_ionising`` / ``n_ionising``: the
     same as ``agree_obs`` restricted to compounds whose neutral fraction (Henderson-
     Hasselbalch on the chemistry layer's sites) changes by more than 0.05 between the two pH.
+    ``agree_compound`` / ``n_compound`` count compounds, not pairs of systems: each
+    compound of a series once, by its shift from the lowest to the highest pH at which the
+    series measured it (among compounds that move over ``min_shift_min`` across that span).
     """
     pos = {sy.dataset: i for i, sy in enumerate(ts.systems)}
     if series is None:
@@ -390,8 +393,8 @@ def ph_shift_agreement(ts: TrainingSet, fp: FoldPredictions, min_shift_min: floa
         members_list = list(groups.values())
     else:
         members_list = [[pos[d] for d in sorted(g) if d in pos] for g in series]
-    d_obs_all, d_pred_all, d_f0_all = [], [], []
-    for members in members_list:
+    d_obs_all, d_pred_all, d_f0_all, key_all, span_all = [], [], [], [], []
+    for g, members in enumerate(members_list):
         for i in members:
             for j in members:
                 if not ts.systems[i].ph < ts.systems[j].ph:
@@ -408,14 +411,22 @@ def ph_shift_agreement(ts: TrainingSet, fp: FoldPredictions, min_shift_min: floa
                 sites = ts.solutes.sites.take(ts.solute_idx[ri])
                 f0 = [ionise(sites, np.full(ri.size, ts.systems[k].ph)).f_neutral for k in (i, j)]
                 d_f0_all.append(np.abs(f0[1] - f0[0]))
+                key_all.append(g * (ts.solutes.batch.usable.size + 1) + ts.solute_idx[ri])
+                span_all.append(np.full(ri.size, ts.systems[j].ph - ts.systems[i].ph))
     nan = float("nan")
     if not d_obs_all:
         return {"agree_obs": nan, "n_obs": 0, "agree_pred": nan, "n_pred": 0,
-                "flat_obs": nan, "agree_ionising": nan, "n_ionising": 0}
+                "flat_obs": nan, "agree_ionising": nan, "n_ionising": 0,
+                "agree_compound": nan, "n_compound": 0}
     do, dp = np.concatenate(d_obs_all), np.concatenate(d_pred_all)
     ionising = np.concatenate(d_f0_all) > 0.05
     same = np.sign(do) == np.sign(dp)
     big_o, big_p = np.abs(do) > min_shift_min, np.abs(dp) > min_shift_min
+    # one row per (series, compound): its widest pH span (first such pair on ties)
+    keys, span = np.concatenate(key_all), np.concatenate(span_all)
+    order = np.lexsort((-span, keys))
+    widest = order[np.r_[True, keys[order][1:] != keys[order][:-1]]]
+    widest = widest[big_o[widest]]
     return {"agree_obs": float(same[big_o].mean()) if big_o.any() else nan,
             "n_obs": int(big_o.sum()),
             "agree_pred": float(same[big_p].mean()) if big_p.any() else nan,
@@ -423,7 +434,9 @@ def ph_shift_agreement(ts: TrainingSet, fp: FoldPredictions, min_shift_min: floa
             "flat_obs": float(np.mean(np.abs(dp[big_o]) < 0.01)) if big_o.any() else nan,
             "agree_ionising": (float(same[big_o & ionising].mean()) if (big_o & ionising).any()
                                else nan),
-            "n_ionising": int((big_o & ionising).sum())}
+            "n_ionising": int((big_o & ionising).sum()),
+            "agree_compound": float(same[widest].mean()) if widest.size else nan,
+            "n_compound": int(widest.size)}
 
 def rescore_pairs(pairs: pd.DataFrame, scale: float) -> pd.DataFrame:
     """The same pairs with the spacing sd multiplied by ``scale``."""

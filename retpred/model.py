@@ -6,6 +6,7 @@ For a solute on a system (column, organic modifier, pH, temperature)::
            + z(solute, column, T, modifier) . w        learned (ridge, HSM-style terms)
            + log10(kEB / kEB_ref)                      column retentivity (HSM definition)
            + log10(f0 + (1 - f0) 10^-drop)             species-weighted retention (pH)
+           + u(solute)                                  compound memory (open data only)
     S      = 0.25 * MW^0.5                              (Snyder and Dolan's rule of thumb)
 
 The column term follows the hydrophobic-subtraction model (Snyder, Dolan, Carr; J.
@@ -16,6 +17,13 @@ linear in solute descriptors (log P, bulk, H-bond acceptors/donors, protonated f
 and fitted on the open data. C8 and C18 therefore differ only through their column
 parameters. Ionisation is the classical species-weighted mix ``k = f0 k_n + (1 - f0) k_ion``
 (retention-physics.md section 4), which keeps the LSS form with a shifted ``log kw``.
+
+``u`` is what the open data say of a compound the descriptors do not: for a structure
+measured on training systems, the shrunken mean of its training residuals after a system
+offset is removed (two-way additive fit, :func:`fit_compound_memory`); zero for any other
+structure. It is constant across systems, so it never changes a predicted pH or column
+shift. Compounds are keyed by a hash of their standardised SMILES, so the model file holds
+no structure of the open data.
 
 Training turns every observed time into ``log kw`` exactly through the gradient engine
 (``retpred.gradient.log_kw_from_rt``) with that system's own program.
@@ -47,7 +55,7 @@ from retpred.method import HsmParameters
 from retpred.structures import StandardisedBatch, standardise_mols, standardise_smiles
 
 #: Model-file format version; a file of another format is refused.
-MODEL_FORMAT = 3
+MODEL_FORMAT = 4
 N_BITS = 256
 #: Snyder and Dolan's rule of thumb S = 0.25 M^0.5 (retention-physics.md section 2).
 S_RULE_COEF = 0.25
@@ -59,6 +67,11 @@ S_RULE_COEF = 0.25
 DEFAULT_ION_DROP_ACID = 0.5
 DEFAULT_ION_DROP_BASE = 1.0
 REFERENCE_TEMPERATURE_C = 30.0
+#: Shrinkage of the compound memory, in systems: a compound seen on n systems keeps
+#: n / (n + MEMORY_SHRINK) of its mean residual. The left-out-source CV is flat between 0.3
+#: and 3 (DEVELOPERS.md "Compound memory").
+MEMORY_SHRINK = 1.0
+MEMORY_ITERATIONS = 5
 
 
 def _d(name: str) -> int:
@@ -227,6 +240,8 @@ class RetentionModel:
     #: lab neighbour correction: {"fingerprints": [[...]], "residuals": [...]} of the lab's
     #: compounds after the linear map (``retpred.calibration.neighbour_correction``) or None
     lab_neighbours_: dict | None = None
+    #: compound memory {structure key: log kw offset} (see :func:`fit_compound_memory`)
+    memory_: dict = field(default_factory=dict)
 
     # --- prediction ------------------------------------------------------------------
     def retention_parameters(
@@ -258,11 +273,18 @@ class RetentionModel:
             # between identical structures decide elution order in every run mode)
             ridge = np.einsum("ij,j->i", lin, self.ridge_.coef_) + self.ridge_.intercept_
             pred = self.gbm_.predict(x[ok]) + ridge + fixed[ok]
+            if self.memory_:
+                pred = pred + self.memory_offsets(solutes, idx[ok])
             if self.lab_linear_ is not None:
                 pred = self.apply_lab(pred, x[ok])
             log_kw[ok] = pred
         s = np.where(ok, s, np.nan)
         return log_kw, s
+
+    def memory_offsets(self, solutes: Solutes, idx: np.ndarray) -> np.ndarray:
+        """Compound-memory offset ``u`` of rows ``idx`` (0 for structures not in training)."""
+        mem, sm = self.memory_, solutes.batch.smiles
+        return np.array([mem.get(compound_key(sm[i]), 0.0) for i in idx], dtype=float)
 
     def apply_lab(self, pred: np.ndarray, x: np.ndarray) -> np.ndarray:
         """Lab correction: ``a + b (pred - pivot) + h(x, pred)`` (see ``retpred.lab``)."""
@@ -313,7 +335,16 @@ class RetentionModel:
         ).fit(x, resid, sample_weight=sample_weight)
         self.ridge_ = ridge
         self.gbm_ = gbm
+        self.lab_linear_ = self.lab_gbm_ = self.lab_neighbours_ = None
+        self.memory_ = {}
         self.domain_ = fit_domain(solutes.descriptors[np.unique(idx)])
+        idx, which = np.asarray(idx), np.asarray(which)
+        resid = log_kw_obs - self.retention_parameters(solutes, contexts, which, idx)[0]
+        ok = np.isfinite(resid)
+        keys, offsets = fit_compound_memory(resid[ok], idx[ok], which[ok])
+        sm = solutes.batch.smiles
+        self.memory_ = {compound_key(sm[k]): round(float(v), 5)
+                        for k, v in zip(keys, offsets, strict=True)}
         return self
 
     def outside_domain(self, solutes: Solutes) -> np.ndarray:
@@ -334,6 +365,34 @@ class RetentionModel:
             "column_terms": list(COLUMN_TERM_NAMES),
             **self.meta_,
         }
+
+
+def compound_key(smiles: str) -> str:
+    """Key of a standardised structure in the compound memory: the first 16 hex digits of
+    the SHA-256 of its canonical SMILES (the structure itself is not stored)."""
+    return hashlib.sha256(smiles.encode("utf-8")).hexdigest()[:16]
+
+
+def fit_compound_memory(
+    resid: np.ndarray, compound: np.ndarray, system: np.ndarray,
+    shrink: float = MEMORY_SHRINK, n_iter: int = MEMORY_ITERATIONS,
+) -> tuple[np.ndarray, np.ndarray]:
+    """Compound effects of the additive model ``r_ij = a_j + u_i + e`` by backfitting.
+
+    ``a_j`` (system offset: dwell volume, dead time, batch; not kept, a user's system is
+    calibrated instead) is the mean over its compounds of ``r - u``; ``u_i`` is the shrunken
+    mean over its systems of ``r - a``, ``sum(r - a) / (n_i + shrink)`` (a ridge penalty on
+    ``u``). Returns ``(unique compounds, u)``.
+    """
+    comps, ci = np.unique(compound, return_inverse=True)
+    _, si = np.unique(system, return_inverse=True)
+    n_c = np.bincount(ci).astype(float)
+    n_s = np.bincount(si).astype(float)
+    u = np.zeros(comps.size)
+    for _ in range(n_iter):
+        a = np.bincount(si, resid - u[ci]) / n_s
+        u = np.bincount(ci, resid - a[si], minlength=comps.size) / (n_c + shrink)
+    return comps, u
 
 
 #: Training structures whose Mahalanobis distance stays within this quantile define the
