@@ -16,7 +16,12 @@ Each dataset (chromatographic system) becomes a :class:`OpenSystem` with its own
 - rows eluting at or before the dead time carry no retention information and are dropped;
   duplicate (dataset, structure) rows are averaged;
 - systems without a gradient program, without a known organic modifier or with a
-  non-silica phase (graphitic carbon) are left out.
+  non-silica phase (graphitic carbon) are left out;
+- 1,3,5-triazines drawn over-hydrogenated (ring carbons sp3 with an extra H, exocyclic
+  C=N, e.g. ``CCN=C1NC(N=C(N1)NC(C)C)Cl`` for the herbicide whose ring is aromatic): the ring
+  is read as the aromatic triazine it must be (:func:`repair_triazine`). A ring CH carbon
+  bonded to two ring nitrogens and carrying Cl, S, O or N is an aminal that would not
+  survive a chromatographic run; the open data hold nine such drawings in one source.
 """
 
 from __future__ import annotations
@@ -28,6 +33,7 @@ from pathlib import Path
 
 import numpy as np
 import pandas as pd
+from rdkit import Chem, RDLogger
 
 from retpred.gradient import ElutionProgram, build_program
 from retpred.method import (
@@ -182,8 +188,50 @@ def load_systems(root: Path) -> list[OpenSystem]:
     return out
 
 
+#: A non-aromatic 1,3,5-triazine ring with an sp3 CH carbon carrying a heteroatom or halogen
+#: outside the ring (an over-hydrogenated drawing of an aromatic triazine).
+_SP3_TRIAZINE = Chem.MolFromSmarts(
+    "[CX4H1;r6;$(C[Cl,Br,I,S,O,N;!R])]1~[#7;r6]~[#6;r6;!a]~[#7;r6]~[#6;r6;!a]~[#7;r6]~1"
+)
+
+
+def repair_triazine(smiles: str) -> str:
+    """The SMILES with every over-hydrogenated 1,3,5-triazine ring made aromatic again
+    (ring atoms lose their extra H, exocyclic C=N become single bonds); other structures
+    and anything that does not sanitise are returned unchanged."""
+    RDLogger.DisableLog("rdApp.*")
+    mol = Chem.MolFromSmiles(smiles)
+    if mol is None or not mol.HasSubstructMatch(_SP3_TRIAZINE):
+        return smiles
+    rw = Chem.RWMol(mol)
+    for match in mol.GetSubstructMatches(_SP3_TRIAZINE):
+        ring = set(match)
+        for i in ring:
+            atom = rw.GetAtomWithIdx(i)
+            atom.SetNumExplicitHs(0)
+            atom.SetNoImplicit(False)
+            atom.SetIsAromatic(True)
+            for bond in atom.GetBonds():
+                other = bond.GetOtherAtomIdx(i)
+                if other in ring:
+                    bond.SetBondType(Chem.BondType.AROMATIC)
+                    bond.SetIsAromatic(True)
+                elif bond.GetBondType() == Chem.BondType.DOUBLE and atom.GetSymbol() == "C":
+                    bond.SetBondType(Chem.BondType.SINGLE)
+                    nb = rw.GetAtomWithIdx(other)
+                    nb.SetNoImplicit(False)
+                    nb.SetNumExplicitHs(0)
+    try:
+        fixed = rw.GetMol()
+        Chem.SanitizeMol(fixed)
+    except Exception:  # noqa: BLE001 - RDKit raises several kinds; keep the original
+        return smiles
+    return Chem.MolToSmiles(fixed)
+
+
 def load_compounds(root: Path, datasets: set[str] | None = None) -> pd.DataFrame:
-    """Observed retention rows: dataset, smiles, inchikey, name, rt_min (duplicates averaged)."""
+    """Observed retention rows: dataset, smiles, inchikey, name, rt_min (duplicates averaged;
+    over-hydrogenated triazine drawings repaired, see :func:`repair_triazine`)."""
     df = pd.read_csv(
         root / "compounds.tsv.gz",
         sep="\t",
@@ -193,6 +241,10 @@ def load_compounds(root: Path, datasets: set[str] | None = None) -> pd.DataFrame
     if datasets is not None:
         df = df[df["dataset"].isin(datasets)]
     df = df[np.isfinite(df["rt_min"]) & (df["rt_min"] > 0) & df["smiles"].notna()]
+    suspect = df["smiles"].str.contains("=N|N=", regex=True)  # cheap pre-filter: a C=N
+    if suspect.any():
+        fixed = {t: repair_triazine(t) for t in df.loc[suspect, "smiles"].unique()}
+        df.loc[suspect, "smiles"] = df.loc[suspect, "smiles"].map(fixed)
     df = (
         df.groupby(["dataset", "smiles"], as_index=False, sort=False)
         .agg(name=("name", "first"), inchikey=("inchikey", "first"), rt_min=("rt_min", "mean"))

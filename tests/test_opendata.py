@@ -1,0 +1,49 @@
+"""Flaws of the open data handled by the reader (retpred.opendata)."""
+
+from __future__ import annotations
+
+import pytest
+from rdkit import Chem
+from rdkit.Chem.rdMolDescriptors import CalcMolFormula
+
+from retpred.opendata import load_compounds, repair_triazine
+
+
+@pytest.mark.parametrize(
+    ("drawn", "formula"),
+    [
+        # over-hydrogenated drawings found in the open data; formulas of the aromatic
+        # herbicides (from memory: atrazine C8H14ClN5, simazine C7H12ClN5, prometryn
+        # C10H19N5S, cyanazine C9H13ClN6; standard pesticide compilations)
+        ("CCN=C1NC(N=C(N1)NC(C)C)Cl", "C8H14ClN5"),
+        ("CCN=C1NC(NC(=NCC)N1)Cl", "C7H12ClN5"),
+        ("CC(C)NC1=NC(N=C(N1)NC(C)C)SC", "C10H19N5S"),
+        ("CCN=C1NC(NC(N1)Cl)NC(C)(C)C#N", "C9H13ClN6"),
+    ],
+)
+def test_over_hydrogenated_triazine_is_read_as_aromatic(drawn, formula):
+    fixed = Chem.MolFromSmiles(repair_triazine(drawn))
+    assert CalcMolFormula(fixed) == formula
+    ring = fixed.GetRingInfo().AtomRings()
+    assert len(ring) == 1 and all(fixed.GetAtomWithIdx(i).GetIsAromatic() for i in ring[0])
+
+
+@pytest.mark.parametrize(
+    "smiles",
+    ["CCNc1nc(Cl)nc(NC(C)C)n1",  # aromatic already
+     "C1NCNCN1",  # hexahydro-1,3,5-triazine: saturated, no substituted CH aminal
+     "CN1CN(C)CN(C)C1",  # 1,3,5-trimethyl-1,3,5-triazinane
+     "NC(=N)NC(=N)N"],  # biguanide: C=N outside any ring
+)
+def test_other_structures_are_left_alone(smiles):
+    assert repair_triazine(smiles) == smiles
+
+
+@pytest.mark.opendata
+def test_open_data_holds_no_sp3_triazine_after_reading(open_data):
+    from retpred.opendata import _SP3_TRIAZINE
+
+    smiles = load_compounds(open_data)["smiles"].unique()
+    mols = [Chem.MolFromSmiles(s) for s in smiles]
+    assert not any(m is not None and m.HasSubstructMatch(_SP3_TRIAZINE) for m in mols)
+    assert "CCNc1nc(Cl)nc(NC(C)C)n1" in set(smiles)
