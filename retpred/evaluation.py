@@ -146,16 +146,35 @@ def cross_validate(ts: TrainingSet, n_folds: int = 5, with_baseline: bool = True
     return FoldPredictions(log_kw=lk, fold=fold, baseline_frac=base)
 
 
+def novel_rows(ts: TrainingSet, fp: FoldPredictions) -> np.ndarray:
+    """True for rows whose compound no training system of their fold contained (the
+    structures a model meets for the first time; the compound memory knows the rest)."""
+    n_sol = len(ts.solutes)
+    out = np.zeros(ts.rt_min.size, dtype=bool)
+    for f in np.unique(fp.fold):
+        te = fp.fold == f
+        seen = np.bincount(ts.solute_idx[~te], minlength=n_sol) > 0
+        out[te] = ~seen[ts.solute_idx[te]]
+    return out
+
+
+def split_quantiles(resid: np.ndarray, novel: np.ndarray, q=(0.05, 0.95)):
+    """``(pooled, novel-only)`` quantiles of finite residuals; the novel ones fall back to
+    the pooled where fewer than 200 novel residuals exist."""
+    ok = np.isfinite(resid)
+    pooled = np.quantile(resid[ok], q)
+    nv = ok & novel
+    return pooled, (np.quantile(resid[nv], q) if nv.sum() >= 200 else pooled)
+
+
 def evaluate(ts: TrainingSet, fp: FoldPredictions, n_draws: int = 5, seed: int = 0,
              quantiles=(0.05, 0.95)) -> pd.DataFrame:
     """One row per left-out system with model and baseline figures."""
     rng = np.random.default_rng(seed)
     resid = (ts.log_kw - fp.log_kw) / ts.s  # elution-composition error, phi units
     rows = []
-    # compounds no training fold saw: per fold, which solutes the other folds contain
-    n_sol = len(ts.solutes)
-    seen = {f: np.bincount(ts.solute_idx[fp.fold != f], minlength=n_sol) > 0
-            for f in np.unique(fp.fold)}
+    # compounds no training fold saw; their intervals use the quantiles of novel rows
+    novel_all = novel_rows(ts, fp)
     cal_resid = []  # (fold, system row index, residuals in phi units) for interval coverage
     cal_cov_obs = []
     logp = ts.solutes.logp[ts.solute_idx]
@@ -165,8 +184,11 @@ def evaluate(ts: TrainingSet, fp: FoldPredictions, n_draws: int = 5, seed: int =
         s = ts.s[m]
         obs = ts.rt_min[m]
         f = fp.fold[m[0]]
-        other = (fp.fold != f) & np.isfinite(resid)
-        q_lo, q_hi = np.quantile(resid[other], quantiles)
+        other = fp.fold != f
+        q_seen, q_new = split_quantiles(resid[other], novel_all[other], quantiles)
+        novel = novel_all[m]
+        q_lo = np.where(novel, q_new[0], q_seen[0])
+        q_hi = np.where(novel, q_new[1], q_seen[1])
         pred_lk = fp.log_kw[m]
         tr = row_traits(ts, m)
         rt_zero = elute(pred_lk, s, prog).rt_min
@@ -175,7 +197,6 @@ def evaluate(ts: TrainingSet, fp: FoldPredictions, n_draws: int = 5, seed: int =
                "last_rt_min": float(obs.max())}
         zs = system_metrics(obs, rt_zero)
         row.update({f"zero_{k}": v for k, v in zs.items()})
-        novel = ~seen[f][ts.solute_idx[m]]
         row["n_novel"] = int(novel.sum())
         if novel.sum() >= 5:
             row["zero_novel_medae_pct"] = system_metrics(obs[novel], rt_zero[novel])[
@@ -185,6 +206,7 @@ def evaluate(ts: TrainingSet, fp: FoldPredictions, n_draws: int = 5, seed: int =
         inside = (obs >= lo) & (obs <= hi)
         row["zero_interval_coverage"] = float(np.mean(inside))
         row["zero_interval_hits"] = int(inside.sum())
+        row["zero_novel_interval_hits"] = int(inside[novel].sum())
         base_rt = fp.baseline_frac[m] * prog.program_end_min
         bz = system_metrics(obs, base_rt)
         row["gbm_zero_medae_pct"] = bz["medae_pct"]
@@ -201,7 +223,8 @@ def evaluate(ts: TrainingSet, fp: FoldPredictions, n_draws: int = 5, seed: int =
                 # same scale as the system's other figures: % of its last observed time
                 err = np.abs(rt_cal[nv] - obs[rest][nv])
                 novel_stats.append(100 * np.nanmedian(err) / obs.max())
-            cal_resid.append((f, len(rows), (ts.log_kw[m][rest] - lk_cal) / s[rest]))
+            cal_resid.append((f, len(rows), (ts.log_kw[m][rest] - lk_cal) / s[rest],
+                              novel[rest]))
             cal_cov_obs.append((lk_cal, s[rest], obs[rest], prog))
             b, a = _robust_line(logp[m][pick], obs[pick])
             logp_stats.append(system_metrics(obs[rest], a + b * logp[m][rest]))
@@ -218,21 +241,32 @@ def evaluate(ts: TrainingSet, fp: FoldPredictions, n_draws: int = 5, seed: int =
     folds = np.array([c[0] for c in cal_resid])
     fold_q = {}
     for f in np.unique(folds):
-        pool = np.concatenate([c[2] for c, ff in zip(cal_resid, folds, strict=True) if ff != f])
-        fold_q[f] = np.quantile(pool[np.isfinite(pool)], quantiles)
+        others = [c for c, ff in zip(cal_resid, folds, strict=True) if ff != f]
+        fold_q[f] = split_quantiles(np.concatenate([c[2] for c in others]),
+                                    np.concatenate([c[3] for c in others]), quantiles)
     hits = np.zeros(len(rows))
     total = np.zeros(len(rows))
-    for (f, ri, _r), (lk_cal, s_r, obs_r, prog) in zip(cal_resid, cal_cov_obs, strict=True):
-        q_lo, q_hi = fold_q[f]
+    novel_hits = np.zeros(len(rows))
+    novel_total = np.zeros(len(rows))
+    for (f, ri, _r, nv), (lk_cal, s_r, obs_r, prog) in zip(cal_resid, cal_cov_obs,
+                                                            strict=True):
+        q_seen, q_new = fold_q[f]
+        q_lo = np.where(nv, q_new[0], q_seen[0])
+        q_hi = np.where(nv, q_new[1], q_seen[1])
         lo = elute(lk_cal + q_lo * s_r, s_r, prog).rt_min
         hi = elute(lk_cal + q_hi * s_r, s_r, prog).rt_min
-        hits[ri] += np.sum((obs_r >= lo) & (obs_r <= hi))
+        inside = (obs_r >= lo) & (obs_r <= hi)
+        hits[ri] += np.sum(inside)
         total[ri] += obs_r.size
+        novel_hits[ri] += np.sum(inside[nv])
+        novel_total[ri] += nv.sum()
     table = pd.DataFrame(rows)
     if len(table):
         table["cal_interval_coverage"] = hits / np.maximum(total, 1)
         table["cal_interval_hits"] = hits
         table["cal_interval_n"] = total
+        table["cal_novel_interval_hits"] = novel_hits
+        table["cal_novel_interval_n"] = novel_total
     return table
 
 
@@ -248,6 +282,12 @@ def summarise(table: pd.DataFrame) -> dict:
     if "cal_interval_hits" in table:
         out["cal_interval_coverage_pooled"] = float(
             table["cal_interval_hits"].sum() / table["cal_interval_n"].sum())
+    if "zero_novel_interval_hits" in table and table["n_novel"].sum() > 0:
+        out["zero_novel_interval_coverage_pooled"] = float(
+            table["zero_novel_interval_hits"].sum() / table["n_novel"].sum())
+    if "cal_novel_interval_hits" in table and table["cal_novel_interval_n"].sum() > 0:
+        out["cal_novel_interval_coverage_pooled"] = float(
+            table["cal_novel_interval_hits"].sum() / table["cal_novel_interval_n"].sum())
     if out.get("gbm_cal_medae_pct"):
         out["ratio_cal_vs_gbm_cal"] = out["cal_medae_pct"] / out["gbm_cal_medae_pct"]
     if out.get("logp_cal_medae_pct"):
@@ -255,20 +295,26 @@ def summarise(table: pd.DataFrame) -> dict:
     return out
 
 
-def residual_quantiles(ts: TrainingSet, fp: FoldPredictions, q=(0.05, 0.95)) -> list[float]:
+def residual_quantiles(ts: TrainingSet, fp: FoldPredictions, q=(0.05, 0.95),
+                       rows: np.ndarray | None = None) -> list[float]:
     """Quantiles of the held-out error in elution-composition units, (obs - pred) / S:
-    an interval ``log kw + q S`` widens with S as a gradient's time error does."""
+    an interval ``log kw + q S`` widens with S as a gradient's time error does. ``rows``
+    (a boolean row mask, e.g. :func:`novel_rows`) restricts them to those rows."""
     r = (ts.log_kw - fp.log_kw) / ts.s
+    if rows is not None:
+        r = r[rows]
     r = r[np.isfinite(r)]
     return [float(v) for v in np.quantile(r, q)]
 
 
 def calibrated_residual_quantiles(ts: TrainingSet, fp: FoldPredictions, q=(0.05, 0.95),
-                                  seed: int = 1) -> tuple[list[float], float]:
+                                  seed: int = 1, rows: np.ndarray | None = None
+                                  ) -> tuple[list[float], float]:
     """log kw residual quantiles after a 10-calibrant shift/linear correction on left-out
-    systems, and the correlation of neighbours' time errors (elution-order neighbours)."""
+    systems, and the correlation of neighbours' time errors (elution-order neighbours).
+    ``rows`` restricts the quantiles (not the correlation) to a boolean row mask."""
     rng = np.random.default_rng(seed)
-    res_all, pairs_a, pairs_b = [], [], []
+    res_all, pairs_a, pairs_b, keep_all = [], [], [], []
     for sysi, m in _scored_systems(ts):
         prog = ts.systems[sysi].program
         s = ts.s[m]
@@ -279,6 +325,7 @@ def calibrated_residual_quantiles(ts: TrainingSet, fp: FoldPredictions, q=(0.05,
         cal = calibrate_on(pred, ts.log_kw[m], ts.rt_min[m], s, prog, pick, tr)
         corr = cal.apply(pred[rest], tr.take(rest))
         res_all.append((ts.log_kw[m][rest] - corr) / s[rest])
+        keep_all.append(np.ones(rest.size, bool) if rows is None else rows[m[rest]])
         rt_p = elute(corr, s[rest], prog).rt_min
         e = ts.rt_min[m][rest] - rt_p
         order = np.argsort(rt_p)
@@ -287,7 +334,7 @@ def calibrated_residual_quantiles(ts: TrainingSet, fp: FoldPredictions, q=(0.05,
         e = e[ok]
         pairs_a.append(e[:-1])
         pairs_b.append(e[1:])
-    r = np.concatenate(res_all)
+    r = np.concatenate(res_all)[np.concatenate(keep_all)]
     r = r[np.isfinite(r)]
     a, b = np.concatenate(pairs_a), np.concatenate(pairs_b)
     rho = float(np.corrcoef(a, b)[0, 1]) if a.size > 3 else 0.0
@@ -307,14 +354,18 @@ def _plates_for(system, phi_e, mw):
 
 def coelution_pairs(ts: TrainingSet, fp: FoldPredictions, q_phi: tuple[float, float],
                     rho: float, calibrated: bool = True, seed: int = 2,
-                    rs_threshold: float = 1.5) -> pd.DataFrame:
+                    rs_threshold: float = 1.5, q_phi_novel: tuple[float, float] | None = None
+                    ) -> pd.DataFrame:
     """Predicted neighbour pairs on left-out systems with their predicted unresolved
     probability and whether the measured times were unresolved (Rs < threshold with the
     predicted peak widths). The error model is the one ``predict`` uses: 90 % interval from
-    the phi-space quantiles, sd = half-width / 1.645, neighbour correlation ``rho``."""
+    the phi-space quantiles (``q_phi_novel`` for compounds new to the fold's training, as
+    ``predict`` does for structures not in the model's memory), sd = half-width / 1.645,
+    neighbour correlation ``rho``."""
     from retpred.peaks import peak_sigma_min, unresolved_probability
 
     rng = np.random.default_rng(seed)
+    novel_all = novel_rows(ts, fp) if q_phi_novel is not None else None
     out = []
     for sysi, m in _scored_systems(ts):
         system = ts.systems[sysi]
@@ -329,8 +380,12 @@ def coelution_pairs(ts: TrainingSet, fp: FoldPredictions, q_phi: tuple[float, fl
                 pred, tr)
             keep = np.setdiff1d(keep, pick)
         el = elute(pred[keep], s[keep], prog)
-        lo = elute(pred[keep] + q_phi[0] * s[keep], s[keep], prog).rt_min
-        hi = elute(pred[keep] + q_phi[1] * s[keep], s[keep], prog).rt_min
+        q0, q1 = q_phi
+        if novel_all is not None:
+            nv = novel_all[m][keep]
+            q0, q1 = np.where(nv, q_phi_novel[0], q0), np.where(nv, q_phi_novel[1], q1)
+        lo = elute(pred[keep] + q0 * s[keep], s[keep], prog).rt_min
+        hi = elute(pred[keep] + q1 * s[keep], s[keep], prog).rt_min
         mw = ts.solutes.mw[ts.solute_idx[m][keep]]
         sigma = peak_sigma_min(prog.dead_time_min, el.k_elution,
                                _plates_for(system, el.phi_elution, mw))

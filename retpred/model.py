@@ -286,6 +286,12 @@ class RetentionModel:
         mem, sm = self.memory_, solutes.batch.smiles
         return np.array([mem.get(compound_key(sm[i]), 0.0) for i in idx], dtype=float)
 
+    def known(self, solutes: Solutes) -> np.ndarray:
+        """True where a usable structure is in the compound memory (it was in training)."""
+        mem, sm = self.memory_, solutes.batch.smiles
+        return np.array([bool(u) and compound_key(t) in mem
+                         for u, t in zip(solutes.usable, sm, strict=True)], dtype=bool)
+
     def apply_lab(self, pred: np.ndarray, x: np.ndarray) -> np.ndarray:
         """Lab correction: ``a + b (pred - pivot) + h(x, pred)`` (see ``retpred.lab``)."""
         lin = self.lab_linear_

@@ -31,6 +31,7 @@ OUTPUT_COLUMNS = (
     "name", "smiles", "status", "rt_min", "rt_low_min", "rt_high_min", "elution_order",
     "peak_width_min", "resolution_next", "coelution_risk", "coelutes_with", "logp", "logd",
     "charge", "species", "log_kw", "s_lss", "standardised_smiles", "changes",
+    "in_training_data",
 )
 
 
@@ -67,12 +68,17 @@ def prepare(method: Method, model: RetentionModel, calibration: Calibration | No
     )
 
 
-def _quantiles(model: RetentionModel, calibrated: bool) -> tuple[float, float]:
+def _quantiles(model: RetentionModel, calibrated: bool,
+               known: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Per-row interval quantiles (phi units): those of structures new to the training data
+    (``<key>_new``, wider) where ``known`` is False and the model has them, else the pooled."""
     key = "calibrated" if calibrated else "zero_shot"
-    q = model.residual_quantiles_.get(key) or model.residual_quantiles_.get("zero_shot")
-    if not q:
-        return (-0.1, 0.1)
-    return float(q[0]), float(q[1])
+    rq = model.residual_quantiles_
+    q = rq.get(key) or rq.get("zero_shot") or (-0.1, 0.1)
+    q_new = rq.get(f"{key}_new") or q
+    lo = np.where(known, float(q[0]), float(q_new[0]))
+    hi = np.where(known, float(q[1]), float(q_new[1]))
+    return lo, hi
 
 
 def retention(prep: Prepared, solutes: Solutes) -> tuple[np.ndarray, np.ndarray]:
@@ -90,7 +96,8 @@ def predict_solutes(
     n = len(solutes)
     log_kw, s = retention(prep, solutes)
     el = elute(log_kw, s, prep.program)
-    q_lo, q_hi = _quantiles(prep.model, prep.calibration is not None)
+    known = prep.model.known(solutes)
+    q_lo, q_hi = _quantiles(prep.model, prep.calibration is not None, known)
     # interval: quantiles of held-out errors in elution-composition units (log kw / S)
     rt_lo = elute(log_kw + q_lo * s, s, prep.program).rt_min
     rt_hi = elute(log_kw + q_hi * s, s, prep.program).rt_min
@@ -150,6 +157,7 @@ def predict_solutes(
             "s_lss": np.where(solutes.usable, s, np.nan),
             "standardised_smiles": solutes.batch.smiles,
             "changes": solutes.batch.changes,
+            "in_training_data": known,
         }
     )
 

@@ -35,6 +35,7 @@ from retpred.evaluation import (  # noqa: E402
     cross_validate,
     evaluate,
     fit_pair_sd_scale,
+    novel_rows,
     ph_shift_agreement,
     rescore_pairs,
     residual_quantiles,
@@ -72,10 +73,17 @@ def main(argv=None) -> int:
     fp = cross_validate(ts, n_folds=args.folds)
     table = evaluate(ts, fp)
     summary = summarise(table)
+    # interval quantiles, pooled and for compounds new to training (wider; predict uses
+    # them for structures outside the compound memory)
+    novel = novel_rows(ts, fp)
     q_zero = residual_quantiles(ts, fp)
+    q_zero_new = residual_quantiles(ts, fp, rows=novel)
     q_cal, rho = calibrated_residual_quantiles(ts, fp)
-    pairs = coelution_pairs(ts, fp, tuple(q_cal), rho, calibrated=True)
-    pairs_zero = coelution_pairs(ts, fp, tuple(q_zero), rho, calibrated=False)
+    q_cal_new, _ = calibrated_residual_quantiles(ts, fp, rows=novel)
+    pairs = coelution_pairs(ts, fp, tuple(q_cal), rho, calibrated=True,
+                            q_phi_novel=tuple(q_cal_new))
+    pairs_zero = coelution_pairs(ts, fp, tuple(q_zero), rho, calibrated=False,
+                                 q_phi_novel=tuple(q_zero_new))
     # one scale of the spacing sd, fitted on the left-out pairs of both regimes (log-loss)
     sd_scale = fit_pair_sd_scale(pd.concat([pairs, pairs_zero], ignore_index=True))
     risk_table = risk_calibration_table(rescore_pairs(pairs, sd_scale))
@@ -102,7 +110,9 @@ def main(argv=None) -> int:
                          table, "-", time.perf_counter() - t_start))
         return 0
     model = fit_model(ts)
-    model.residual_quantiles_ = {"zero_shot": q_zero, "calibrated": q_cal, "levels": [0.05, 0.95]}
+    model.residual_quantiles_ = {"zero_shot": q_zero, "calibrated": q_cal,
+                                 "zero_shot_new": q_zero_new, "calibrated_new": q_cal_new,
+                                 "levels": [0.05, 0.95]}
     model.residual_sd_ = {"neighbour_rho": rho, "pair_sd_scale": sd_scale}
     model.metrics_ = summary
     raw = b"".join((root / f).read_bytes() for f in ("systems.tsv", "gradients.tsv",
@@ -169,6 +179,10 @@ def model_card(summary: dict, meta: dict, table, sha: str, seconds: float) -> st
          None, None, 3),
         ("calibrated 90 % interval coverage (pooled rows)", "cal_interval_coverage_pooled",
          None, None, 3),
+        ("zero-shot 90 % interval coverage, compounds new to training",
+         "zero_novel_interval_coverage_pooled", None, None, 3),
+        ("calibrated 90 % interval coverage, compounds new to training",
+         "cal_novel_interval_coverage_pooled", None, None, 3),
     ]
     rows = "\n".join(
         f"| {label} | {f(a, d)} | {f(b, d) if b else '-'} | {f(c, d) if c else '-'} |"

@@ -96,3 +96,25 @@ def test_reproduces_recorded_check_subset(shipped_model, open_data):
     # and the recorded validation figures are those of the card
     assert json.dumps(shipped_model.metrics_)  # serialisable, present
     assert shipped_model.metrics_["n_systems"] > 100
+
+
+def test_new_structures_get_the_wider_interval(shipped_model, open_data, demo_dir):
+    """Structures measured in the open data are known to the compound memory, a structure
+    absent from it is not; the new one gets the quantiles measured on compounds new to
+    training, which are wider than the pooled ones (left-out residuals of the build), so
+    its interval in elution-composition units is wider on the same method."""
+    from retpred.method import load_method
+    from retpred.opendata import load_compounds
+    from retpred.predict import predict_frame, prepare
+
+    rows = load_compounds(open_data, {shipped_model.meta_["check_subset"]["datasets"][0]})
+    known = rows["smiles"].iloc[:5].tolist()
+    # a C31 dialkyl sulfone, not a structure of the open data
+    new = "CCCCCCCCCCCCCCCS(=O)(=O)CCCCCCCCCCCCCCCC"
+    assert new not in set(load_compounds(open_data)["smiles"])
+    t = predict_frame(prepare(load_method(demo_dir / "method.toml"), shipped_model),
+                      known + [new], with_pairs=False)
+    assert t["in_training_data"].tolist() == [True] * 5 + [False]
+    rq = shipped_model.residual_quantiles_
+    for key in ("zero_shot", "calibrated"):
+        assert rq[f"{key}_new"][1] - rq[f"{key}_new"][0] > rq[key][1] - rq[key][0]
