@@ -126,15 +126,20 @@ def train_lab_model(
         base_lk[m], s[m] = lk, ss
         obs_lk[m] = log_kw_from_rt(rt[m], ss, prep.program)
         meoh[m] = 1.0 if prep.context.organic == "methanol" else 0.0
-    ok = np.isfinite(base_lk) & np.isfinite(obs_lk)
-    n_ok = int(ok.sum())
+    # Compounds measured at or before the dead time have no log kw to fit, but they are
+    # measurements all the same: they count in the cross-validated time error that chooses
+    # the correction (a correction fitted on the retained compounds alone is biased towards
+    # more retention, and would move the unretained ones later).
+    usable = np.isfinite(base_lk)
+    n_ok = int((usable & np.isfinite(obs_lk)).sum())
     if n_ok < MIN_COMPOUNDS:
         raise InputError(
             f"only {n_ok} usable compound(s); a lab model needs at least {MIN_COMPOUNDS}. "
             "With fewer standards use 'retpred calibrate' instead", path=str(data[0]))
-    idx = np.flatnonzero(ok)
+    idx = np.flatnonzero(usable)
     x = solute_matrix(sol, idx, meoh[idx])
     b, o = base_lk[idx], obs_lk[idx]
+    retained = np.isfinite(o)
 
     def rt_of(lk, sel):
         res = np.full(sel.size, np.nan)
@@ -148,13 +153,14 @@ def train_lab_model(
     errs = {k: [] for k in CANDIDATES}
     for tr, te in folds.split(idx):
         obs_rt = rt[idx][te]
+        tr = tr[retained[tr]]
         for kind in CANDIDATES:
             lin, gbm = _fit_correction(b[tr], o[tr], x[tr], kind)
             errs[kind].append(np.abs(rt_of(_apply(lin, gbm, b[te], x[te]), te) - obs_rt))
     metrics = {k: float(np.nanmedian(np.concatenate(v))) for k, v in errs.items()}
     lowest = min(metrics[k] for k in CANDIDATES)
     best = next(k for k in CANDIDATES if metrics[k] <= (1 + SELECT_TOLERANCE) * lowest)
-    lin, gbm = _fit_correction(b, o, x, best)
+    lin, gbm = _fit_correction(b[retained], o[retained], x[retained], best)
     lab = copy.copy(base)
     lab.lab_neighbours_ = lin.pop("neighbours", None)
     lab.lab_linear_ = lin
@@ -165,6 +171,7 @@ def train_lab_model(
         "lab_training_files": [str(p) for p in data],
         "lab_training_sha256": data_fingerprint(*(Path(p).read_bytes() for p in data)),
         "lab_n_compounds": n_ok,
+        "lab_n_unretained": int((~retained).sum()),
         "lab_cv_median_abs_error_min": metrics,
         "lab_correction": {"lab_linear": "linear", "lab_model": "linear + gradient boosting",
                            "lab_neighbours": "linear + neighbours",

@@ -71,12 +71,15 @@ def test_lab_model_beats_base_zero_shot_on_other_half(lab_case, open_data, open_
                                                        small_training_set):
     """Issue 5 target: lab error on the held-out half <= 0.7 x the base model's zero-shot
     error on the same compounds, on the first four unseen acetonitrile C18 systems of
-    120-1500 compounds in dataset order. Measured ratios with the test model: 0.29 and 0.75
-    where its zero-shot error is large (0054, 0004), about 1.0 where it is already near the
-    data's noise (0055: 0.19 min, 0179: 0.28 min), so the 0.7 target is NOT met on every
-    system (issue 5 stays open). What the test holds: the cross-validated choice never makes
-    a system meaningfully worse (<= 1.1), and the lab model more than halves the error where
-    there is something to correct (best system <= 0.5)."""
+    120-1500 compounds in dataset order. Measured ratios with the test model: 0.75 (0004),
+    0.36 (0054), 0.33 (0055) and 0.94 (0179, where the zero-shot error is already 0.32 min
+    and a third of the compounds elute at the dead time), so the 0.7 target is not met on
+    every system. Over the 257 left-out-source systems of the open data with 40 or more
+    compounds (shipped-model cross-validation) the median ratio is 0.50. What the test
+    holds: the cross-validated choice never makes a system meaningfully worse (<= 1.1; it
+    was 1.10-1.26 on 0179 when compounds eluting at the dead time were left out of the
+    choice), and the lab model more than halves the error where there is something to
+    correct (best system <= 0.5)."""
     from retpred.opendata import load_compounds
 
     seen = {s.dataset for s in small_training_set.systems}
