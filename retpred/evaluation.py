@@ -160,7 +160,8 @@ def novel_rows(ts: TrainingSet, fp: FoldPredictions) -> np.ndarray:
 
 def split_quantiles(resid: np.ndarray, novel: np.ndarray, q=(0.05, 0.95)):
     """``(pooled, novel-only)`` quantiles of finite residuals; the novel ones fall back to
-    the pooled where fewer than 200 novel residuals exist."""
+    the pooled where fewer than 200 novel residuals exist (``novel``: a boolean mask, e.g.
+    :func:`novel_rows`)."""
     ok = np.isfinite(resid)
     pooled = np.quantile(resid[ok], q)
     nv = ok & novel
@@ -295,24 +296,21 @@ def summarise(table: pd.DataFrame) -> dict:
     return out
 
 
-def residual_quantiles(ts: TrainingSet, fp: FoldPredictions, q=(0.05, 0.95),
-                       rows: np.ndarray | None = None) -> list[float]:
+def residual_quantiles(ts: TrainingSet, fp: FoldPredictions, q=(0.05, 0.95)) -> list[float]:
     """Quantiles of the held-out error in elution-composition units, (obs - pred) / S:
-    an interval ``log kw + q S`` widens with S as a gradient's time error does. ``rows``
-    (a boolean row mask, e.g. :func:`novel_rows`) restricts them to those rows."""
+    an interval ``log kw + q S`` widens with S as a gradient's time error does."""
     r = (ts.log_kw - fp.log_kw) / ts.s
-    if rows is not None:
-        r = r[rows]
     r = r[np.isfinite(r)]
     return [float(v) for v in np.quantile(r, q)]
 
 
 def calibrated_residual_quantiles(ts: TrainingSet, fp: FoldPredictions, q=(0.05, 0.95),
                                   seed: int = 1, rows: np.ndarray | None = None
-                                  ) -> tuple[list[float], float]:
-    """log kw residual quantiles after a 10-calibrant shift/linear correction on left-out
-    systems, and the correlation of neighbours' time errors (elution-order neighbours).
-    ``rows`` restricts the quantiles (not the correlation) to a boolean row mask."""
+                                  ) -> tuple[list[float], list[float], float]:
+    """log kw residual quantiles after a 10-calibrant correction on left-out systems, the
+    same over the rows of the boolean mask ``rows`` (e.g. :func:`novel_rows`; pooled when
+    ``rows`` is None, see :func:`split_quantiles`), and the correlation of neighbours' time
+    errors (elution-order neighbours). One calibration per system serves all three."""
     rng = np.random.default_rng(seed)
     res_all, pairs_a, pairs_b, keep_all = [], [], [], []
     for sysi, m in _scored_systems(ts):
@@ -334,11 +332,10 @@ def calibrated_residual_quantiles(ts: TrainingSet, fp: FoldPredictions, q=(0.05,
         e = e[ok]
         pairs_a.append(e[:-1])
         pairs_b.append(e[1:])
-    r = np.concatenate(res_all)[np.concatenate(keep_all)]
-    r = r[np.isfinite(r)]
+    pooled, selected = split_quantiles(np.concatenate(res_all), np.concatenate(keep_all), q)
     a, b = np.concatenate(pairs_a), np.concatenate(pairs_b)
     rho = float(np.corrcoef(a, b)[0, 1]) if a.size > 3 else 0.0
-    return [float(v) for v in np.quantile(r, q)], rho
+    return [float(v) for v in pooled], [float(v) for v in selected], rho
 
 
 def _plates_for(system, phi_e, mw):
@@ -414,14 +411,30 @@ def risk_calibration_table(pairs: pd.DataFrame, edges=(0, .05, .1, .2, .3, .4, .
                          "observed_unresolved": g["unresolved"].mean()}).reset_index()
 
 
+def ph_series(systems) -> list[list[int]]:
+    """Indices of systems measured on one column and program at several pH: systems of one
+    source with the same phase, HSM parameters, length, modifier, program and flow, at two
+    or more different pH."""
+    def key(sy):
+        p = sy.program
+        hsm = None if sy.hsm is None else tuple(round(v, 3) for v in vars(sy.hsm).values())
+        return (sy.group, sy.phase, hsm, sy.organic, round(sy.length_mm, 1),
+                tuple(np.round(p.pump_time_min, 2)), tuple(np.round(p.pump_phi, 3)),
+                round(float(p.pump_flow_ml_min[0]), 3))
+
+    groups: dict = {}
+    for i, sy in enumerate(systems):
+        groups.setdefault(key(sy), []).append(i)
+    return [m for m in groups.values() if len({systems[i].ph for i in m}) >= 2]
+
+
 def ph_shift_agreement(ts: TrainingSet, fp: FoldPredictions, min_shift_min: float = 0.5,
                        series: list[set[str]] | None = None) -> dict:
     """Sign agreement of predicted and observed pH shifts across pH series of the open data.
 
     A series is a set of systems measured on one column and program at several pH; by
-    default systems of one source with the same phase, HSM parameters, length, modifier,
-    program and flow (``series`` names them explicitly). For every compound on two systems
-    of a series at different pH the shift (higher pH minus lower) is compared. Returns
+    default :func:`ph_series` (``series`` names them explicitly). For every compound on two
+    systems of a series at different pH the shift (higher pH minus lower) is compared. Returns
     ``agree_obs`` (fraction right among shifts observed over ``min_shift_min``), ``n_obs``,
     ``agree_pred`` (fraction right among shifts *predicted* over it), ``n_pred`` and
     ``flat_obs`` (fraction of the observed shifts for which the model predicts no shift at
@@ -435,17 +448,7 @@ def ph_shift_agreement(ts: TrainingSet, fp: FoldPredictions, min_shift_min: floa
     """
     pos = {sy.dataset: i for i, sy in enumerate(ts.systems)}
     if series is None:
-        def key(sy):
-            p = sy.program
-            hsm = None if sy.hsm is None else tuple(round(v, 3) for v in vars(sy.hsm).values())
-            return (sy.group, sy.phase, hsm, sy.organic, round(sy.length_mm, 1),
-                    tuple(np.round(p.pump_time_min, 2)), tuple(np.round(p.pump_phi, 3)),
-                    round(float(p.pump_flow_ml_min[0]), 3))
-
-        groups: dict = {}
-        for i, sy in enumerate(ts.systems):
-            groups.setdefault(key(sy), []).append(i)
-        members_list = list(groups.values())
+        members_list = ph_series(ts.systems)
     else:
         members_list = [[pos[d] for d in sorted(g) if d in pos] for g in series]
     d_obs_all, d_pred_all, d_f0_all, key_all, span_all = [], [], [], [], []

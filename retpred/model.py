@@ -36,6 +36,7 @@ import json
 from collections.abc import Sequence
 from dataclasses import dataclass, field
 from datetime import UTC, datetime
+from functools import cached_property
 
 import numpy as np
 from sklearn.ensemble import HistGradientBoostingRegressor
@@ -55,17 +56,19 @@ from retpred.method import HsmParameters
 from retpred.structures import StandardisedBatch, standardise_mols, standardise_smiles
 
 #: Model-file format version; a file of another format is refused.
-MODEL_FORMAT = 4
+MODEL_FORMAT = 5
 N_BITS = 256
 #: Snyder and Dolan's rule of thumb S = 0.25 M^0.5 (retention-physics.md section 2).
 S_RULE_COEF = 0.25
-#: Drop of log k on full ionisation of an acid and of a base. Chosen from the grid
-#: {0.3, 0.5, 1.0} x {0.3, 0.5, 1.0} by the left-out-source cross-validation of the open data
-#: (calibrated error and pH-series sign agreement; DEVELOPERS.md "Ion drops"), not fitted
-#: per build. The smooth charge terms of the ridge are linear in the charge with small
-#: coefficients, so retention still falls monotonically as a site ionises.
+#: Drop of log k per unpaired negative charge (acid), per unpaired positive charge (base)
+#: and per pair of opposite charges on one molecule (zwitterion), see :func:`ion_term`.
+#: Chosen by the left-out-source cross-validation of the open data (error and pH-series sign
+#: agreement together; DEVELOPERS.md "Ion drops"), not fitted per build. The smooth charge
+#: terms of the ridge are linear in the charge with small coefficients, so retention still
+#: falls monotonically as a site ionises.
 DEFAULT_ION_DROP_ACID = 0.5
 DEFAULT_ION_DROP_BASE = 1.0
+DEFAULT_ION_DROP_PAIR = 0.75
 REFERENCE_TEMPERATURE_C = 30.0
 #: Shrinkage of the compound memory, in systems: a compound seen on n systems keeps
 #: n / (n + MEMORY_SHRINK) of its mean residual. The left-out-source CV is flat between 0.3
@@ -102,6 +105,11 @@ class Solutes:
     def mw(self) -> np.ndarray:
         return self.descriptors[:, _d("mw")]
 
+    @cached_property
+    def memory_keys(self) -> list[str]:
+        """Compound-memory key of every row (:func:`compound_key`), hashed once a batch."""
+        return [compound_key(t) for t in self.batch.smiles]
+
 
 def featurise(smiles: Sequence[str] | None = None, mols: Sequence | None = None) -> Solutes:
     """Standardise and describe a batch (SMILES, or RDKit molecules from an SDF)."""
@@ -129,14 +137,32 @@ def s_parameter(mw: np.ndarray) -> np.ndarray:
     return S_RULE_COEF * np.sqrt(np.clip(mw, 30.0, 3000.0))
 
 
-def ion_term(ion: Ionisation, drop_acid: float, drop_base: float) -> np.ndarray:
-    """``log10(f0 + (1 - f0) 10^-drop)``, drop weighted by the anionic and cationic charge."""
+def ion_term(ion: Ionisation, drop_acid: float, drop_base: float,
+             drop_pair: float = DEFAULT_ION_DROP_PAIR) -> np.ndarray:
+    """Species-weighted retention ``log10(f0 + (1 - f0) 10^-d)`` of the ionised forms.
+
+    ``f0`` is the neutral fraction (retention-physics.md section 4). The mean drop ``d`` of
+    the charged forms follows their charges ``q+`` and ``q-`` (mean positive and negative
+    charge): unpaired charges cost ``drop_base`` (net positive) or ``drop_acid`` (net
+    negative) each, opposite charges paired on one molecule ``drop_pair`` per pair::
+
+        d (1 - f0) = drop_base max(q+ - q-, 0) + drop_acid max(q- - q+, 0)
+                     + drop_pair min(q+, q-)
+
+    For one ionisable site this is the classical sigmoid ``k = f0 k_n + (1 - f0) k_ion``
+    (``q = 1 - f0``, ``d`` the drop of that site's kind). With several sites every charge
+    counts: a dianion loses twice the drop of a monoanion (more charge, more polar), and a
+    zwitterion pays ``drop_pair`` for its pair of opposite charges instead of the mean of an
+    acid's and a base's drop. The ridge's linear charge terms then move the plateaus
+    (``COLUMN_TERM_NAMES``: cation, anion, cation*anion).
+    """
     pos, neg = ion.positive_charge, ion.negative_charge
-    tot = pos + neg
-    w_base = np.where(tot > 0, pos / np.where(tot > 0, tot, 1.0), 0.5)
-    drop = w_base * drop_base + (1 - w_base) * drop_acid
     f0 = np.clip(ion.f_neutral, 0.0, 1.0)
-    return np.log10(f0 + (1.0 - f0) * 10.0 ** (-drop))
+    total = (drop_base * np.maximum(pos - neg, 0.0) + drop_acid * np.maximum(neg - pos, 0.0)
+             + drop_pair * np.minimum(pos, neg))
+    charged = 1.0 - f0
+    drop = np.where(charged > 1e-12, total / np.maximum(charged, 1e-12), 0.0)
+    return np.log10(f0 + charged * 10.0 ** (-drop))
 
 
 # Names of the HSM-style interaction features, in order (documentation and model card).
@@ -218,6 +244,7 @@ class RetentionModel:
     reference: HsmParameters
     ion_drop_acid: float = DEFAULT_ION_DROP_ACID
     ion_drop_base: float = DEFAULT_ION_DROP_BASE
+    ion_drop_pair: float = DEFAULT_ION_DROP_PAIR
     gbm_max_iter: int = 300
     gbm_learning_rate: float = 0.08
     ridge_alpha: float = 1.0
@@ -265,7 +292,7 @@ class RetentionModel:
         s = s_parameter(solutes.mw[idx])
         ok = solutes.usable[idx] & np.all(np.isfinite(solutes.descriptors[idx]), axis=1)
         if ok.any():
-            fixed = self._fixed_terms(arr, ion)
+            fixed = self.fixed_terms(arr, ion)
             z = column_features(solutes, idx, arr, ion, self.reference)
             x = solute_matrix(solutes, idx, arr["meoh"])
             lin = np.column_stack([z[ok], solutes.descriptors[idx][ok]])
@@ -283,14 +310,15 @@ class RetentionModel:
 
     def memory_offsets(self, solutes: Solutes, idx: np.ndarray) -> np.ndarray:
         """Compound-memory offset ``u`` of rows ``idx`` (0 for structures not in training)."""
-        mem, sm = self.memory_, solutes.batch.smiles
-        return np.array([mem.get(compound_key(sm[i]), 0.0) for i in idx], dtype=float)
+        mem, keys = self.memory_, solutes.memory_keys
+        return np.array([mem.get(keys[i], 0.0) for i in idx], dtype=float)
 
     def known(self, solutes: Solutes) -> np.ndarray:
         """True where a usable structure is in the compound memory (it was in training)."""
-        mem, sm = self.memory_, solutes.batch.smiles
-        return np.array([bool(u) and compound_key(t) in mem
-                         for u, t in zip(solutes.usable, sm, strict=True)], dtype=bool)
+        mem = self.memory_
+        return np.array([bool(u) and k in mem
+                         for u, k in zip(solutes.usable, solutes.memory_keys, strict=True)],
+                        dtype=bool)
 
     def apply_lab(self, pred: np.ndarray, x: np.ndarray) -> np.ndarray:
         """Lab correction: ``a + b (pred - pivot) + h(x, pred)`` (see ``retpred.lab``)."""
@@ -307,9 +335,10 @@ class RetentionModel:
                                              np.asarray(nb["residuals"], dtype=float))
         return out
 
-    def _fixed_terms(self, arr: dict, ion: Ionisation) -> np.ndarray:
+    def fixed_terms(self, arr: dict, ion: Ionisation) -> np.ndarray:
+        """Terms of ``log kw`` that are not learned: column retentivity and ionisation."""
         return np.log10(arr["kEB"] / self.reference.kEB) + ion_term(
-            ion, self.ion_drop_acid, self.ion_drop_base
+            ion, self.ion_drop_acid, self.ion_drop_base, self.ion_drop_pair
         )
 
     # --- training --------------------------------------------------------------------
@@ -325,7 +354,7 @@ class RetentionModel:
         """
         arr = context_arrays(contexts, which)
         ion = ionise(solutes.sites.take(idx), arr["ph"])
-        y = log_kw_obs - self._fixed_terms(arr, ion)
+        y = log_kw_obs - self.fixed_terms(arr, ion)
         z = column_features(solutes, idx, arr, ion, self.reference)
         x = solute_matrix(solutes, idx, arr["meoh"])
         lin = np.column_stack([z, solutes.descriptors[idx]])

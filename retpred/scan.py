@@ -50,7 +50,6 @@ from retpred.model import (
     SystemContext,
     column_features,
     context_arrays,
-    ion_term,
     s_parameter,
     solute_matrix,
 )
@@ -343,8 +342,7 @@ def _fast_grid(model: RetentionModel, solutes: Solutes, contexts: list[SystemCon
     n_in = getattr(model.ridge_, "n_features_in_", z.shape[1])
     # the ridge sees the HSM-style terms, or those plus the descriptor main effects
     lin = z if n_in == z.shape[1] else np.column_stack([z, solutes.descriptors[idx]])
-    fixed = np.log10(arr["kEB"] / model.reference.kEB) + ion_term(
-        ion, model.ion_drop_acid, model.ion_drop_base)
+    fixed = model.fixed_terms(arr, ion)
     pred = g.reshape(-1) + model.ridge_.predict(lin) + fixed
     if model.lab_linear_ is not None:
         pred = model.apply_lab(pred, solute_matrix(solutes, idx, arr["meoh"]))

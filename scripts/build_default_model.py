@@ -38,8 +38,8 @@ from retpred.evaluation import (  # noqa: E402
     novel_rows,
     ph_shift_agreement,
     rescore_pairs,
-    residual_quantiles,
     risk_calibration_table,
+    split_quantiles,
     summarise,
 )
 from retpred.io import atomic_output, atomic_output_path  # noqa: E402
@@ -76,10 +76,9 @@ def main(argv=None) -> int:
     # interval quantiles, pooled and for compounds new to training (wider; predict uses
     # them for structures outside the compound memory)
     novel = novel_rows(ts, fp)
-    q_zero = residual_quantiles(ts, fp)
-    q_zero_new = residual_quantiles(ts, fp, rows=novel)
-    q_cal, rho = calibrated_residual_quantiles(ts, fp)
-    q_cal_new, _ = calibrated_residual_quantiles(ts, fp, rows=novel)
+    q_zero, q_zero_new = (list(map(float, q)) for q in
+                          split_quantiles((ts.log_kw - fp.log_kw) / ts.s, novel))
+    q_cal, q_cal_new, rho = calibrated_residual_quantiles(ts, fp, rows=novel)
     pairs = coelution_pairs(ts, fp, tuple(q_cal), rho, calibrated=True,
                             q_phi_novel=tuple(q_cal_new))
     pairs_zero = coelution_pairs(ts, fp, tuple(q_zero), rho, calibrated=False,

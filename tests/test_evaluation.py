@@ -11,10 +11,12 @@ import pytest
 from scipy.stats import spearmanr
 
 from retpred.evaluation import (
+    FoldPredictions,
     coelution_pairs,
     cross_validate,
     fit_pair_sd_scale,
     order_accuracy,
+    ph_series,
     ph_shift_agreement,
     rescore_pairs,
     residual_quantiles,
@@ -51,39 +53,46 @@ def small_cv(small_training_set):
 
 @pytest.mark.opendata
 def test_coelution_risk_is_calibrated_on_left_out_systems(small_training_set, small_cv):
-    """Fit the single spacing-sd scale on half the left-out systems; on the other half the
-    predicted risk must match the observed unresolved fraction (issue 4: pairs with risk
-    about 0.3 are unresolved about 30 % of the time). Each system contributes at most 300
-    neighbour pairs (a fixed random draw), so that one 3,000-pair system cannot stand in
-    for the half it sits in, and the check runs both ways (fit on the even-numbered
-    systems, test on the odd, and the reverse)."""
+    """Pairs of every left-out system are scored with the single spacing-sd scale fitted on
+    the pairs of all the *other* systems (cross-fitting, one system out at a time), so no
+    pair is scored with a scale it helped to fit and every system is tested. The predicted
+    risk must then match the observed unresolved fraction (issue 4: pairs with risk about
+    0.3 are unresolved about 30 % of the time): overall within 0.025, and in every risk bin
+    with at least 100 pairs within 0.05. Each system contributes at most 300 neighbour pairs
+    (a fixed random draw), so that one 3,000-pair system cannot dominate. (An earlier
+    design fitted on the even-numbered systems and tested on the odd: with ten systems a
+    half, their base rates of unresolved pairs differed by 0.03, which no scale can match.)
+    """
+    import pandas as pd
+
     from retpred.evaluation import calibrated_residual_quantiles
 
-    q_cal, rho = calibrated_residual_quantiles(small_training_set, small_cv)
+    q_cal, _, rho = calibrated_residual_quantiles(small_training_set, small_cv)
     pairs = coelution_pairs(small_training_set, small_cv, tuple(q_cal), rho, calibrated=True)
     systems = pairs["dataset"].unique()
     rng = np.random.default_rng(0)
     ds = pairs["dataset"].to_numpy()
     keep = np.concatenate([rng.permutation(np.flatnonzero(ds == d))[:300] for d in systems])
     pairs = pairs.iloc[np.sort(keep)]
-    even = pairs["dataset"].isin(systems[::2])
-    for fit_half in (even, ~even):
-        scale = fit_pair_sd_scale(pairs[fit_half])
-        test = rescore_pairs(pairs[~fit_half], scale)
-        assert len(test) > 500
-        # overall: mean predicted risk ~ observed unresolved fraction (within 0.035: the
-        # scale comes from the other half's systems, and pairs cluster by system)
-        assert abs(test["risk"].mean() - test["unresolved"].mean()) < 0.035
-        # and by risk bin, wherever a bin has enough pairs to say anything
-        bins = np.digitize(test["risk"], [0.05, 0.1, 0.2, 0.3, 0.5, 0.7])
-        for b in np.unique(bins):
-            sel = test[bins == b]
-            if len(sel) >= 50:
-                assert abs(sel["risk"].mean() - sel["unresolved"].mean()) < 0.07, b
-        # risk must separate: pairs at higher risk are unresolved more often
-        hi = test[test["risk"] >= 0.1]["unresolved"].mean()
-        lo = test[test["risk"] < 0.05]["unresolved"].mean()
-        assert hi > lo
+    assert len(systems) >= 15 and len(pairs) > 1000
+    scored = []
+    for d in systems:
+        mine = pairs["dataset"] == d
+        scored.append(rescore_pairs(pairs[mine], fit_pair_sd_scale(pairs[~mine])))
+    test = pd.concat(scored)
+    assert abs(test["risk"].mean() - test["unresolved"].mean()) < 0.025
+    bins = np.digitize(test["risk"], [0.05, 0.1, 0.2, 0.3, 0.5, 0.7])
+    big = 0
+    for b in np.unique(bins):
+        sel = test[bins == b]
+        if len(sel) >= 100:
+            big += 1
+            assert abs(sel["risk"].mean() - sel["unresolved"].mean()) < 0.05, b
+    assert big >= 2
+    # risk must separate: pairs at higher risk are unresolved more often
+    hi = test[test["risk"] >= 0.1]["unresolved"].mean()
+    lo = test[test["risk"] < 0.05]["unresolved"].mean()
+    assert hi > lo
 
 
 @pytest.mark.opendata
@@ -114,3 +123,36 @@ def test_ph_shift_direction_on_left_out_ph_series(open_data, open_systems, small
     # compounds whose tabulated sites change ionisation between the two pH: the direction
     # comes from Henderson-Hasselbalch and must be right for most of them
     assert r["n_ionising"] >= 100 and r["agree_ionising"] >= 0.8, r
+
+
+@pytest.mark.opendata
+def test_ph_shift_direction_with_every_ph_series_source_held_out(open_data):
+    """Issue 3's pH target on a full-size model that has never seen a pH series: every
+    source with a pH series in the open data is held out at once (harsher than the
+    left-out-source cross-validation, where the other sources' series are in training),
+    the model is fitted on all other systems and predicts the series. Counted once per
+    compound, from the lowest to the highest pH at which its series measured it, the
+    predicted shift must follow the observed one in sign for >= 80 % of the compounds that
+    move over 0.5 min (measured 0.835 on 375 compounds; left-out-source CV 0.86; the model
+    of format 4, before multiply charged ions were described, 0.749). Over every pair of pH
+    the figure is lower (measured 0.745): about a fifth of the observed shifts are of
+    compounds without an ionisable group, whose shift follows the buffer change and which
+    the model predicts flat. Where the tabulated sites change ionisation the direction
+    comes from Henderson-Hasselbalch and must be right almost always (measured 0.94)."""
+    from retpred.training import fit_model, load_open_training_set
+
+    ts = load_open_training_set(open_data)
+    series = ph_series(ts.systems)
+    sources = {ts.systems[i].group for members in series for i in members}
+    assert len(series) >= 8 and len(sources) >= 4
+    held = np.isin(ts.groups, sorted(sources))
+    model = fit_model(ts, ~held)
+    log_kw = np.full(ts.rt_min.size, np.nan)
+    log_kw[held] = model.retention_parameters(ts.solutes, ts.contexts,
+                                              which=ts.system_idx[held],
+                                              idx=ts.solute_idx[held])[0]
+    fp = FoldPredictions(log_kw=log_kw, fold=np.where(held, 0, 1), baseline_frac=log_kw)
+    r = ph_shift_agreement(ts, fp)
+    assert r["n_compound"] >= 300 and r["agree_compound"] >= 0.80, r
+    assert r["n_obs"] >= 1500 and r["agree_obs"] >= 0.72, r
+    assert r["n_ionising"] >= 800 and r["agree_ionising"] >= 0.90, r
