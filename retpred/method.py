@@ -488,13 +488,29 @@ def parse_method(data: Mapping, source: str = "<method>", *, text: str | None = 
         raise r.error(f"a method must be a table of sections, got {_kind(data)}", None)
     r.check_keys(data, tuple(_SCHEMA), "")
     sections = {name: r.table(data, name, name) for name in _SCHEMA}
+    # Each table is checked on its own and the fault that comes first in the file is
+    # reported, so a user fixing faults top to bottom is never sent further down first;
+    # a missing table has no line and is reported after faults in the tables present.
+    faults: list[MethodError] = []
+
+    def checked(parse, *args):
+        if any(a is None for a in args[1:]):
+            return None
+        try:
+            return parse(*args)
+        except MethodError as exc:
+            faults.append(exc)
+            return None
+
+    column = checked(_parse_column, r, sections["column"])
+    mobile_phase = checked(_parse_mobile_phase, r, sections["mobile_phase"], column)
+    gradient = checked(_parse_gradient, r, sections["gradient"])
+    instrument = checked(_parse_instrument, r, sections["instrument"] or {})
+    if faults:
+        raise min(faults, key=lambda e: (e.line is None, e.line or 0))
     for name in ("column", "mobile_phase", "gradient"):
         if sections[name] is None:
             raise r.error(f"missing required table [{name}]", name)
-    column = _parse_column(r, sections["column"])
-    mobile_phase = _parse_mobile_phase(r, sections["mobile_phase"], column)
-    gradient = _parse_gradient(r, sections["gradient"])
-    instrument = _parse_instrument(r, sections["instrument"])
     method = Method(column=column, mobile_phase=mobile_phase, gradient=gradient,
                     instrument=instrument, source=str(source))
     if gradient.dwell_volume_ml is None:

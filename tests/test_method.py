@@ -313,6 +313,26 @@ def test_invalid_value_reports_the_line_in_the_file(tmp_path):
     assert info.value.field == "column.particle_um"
 
 
+def test_several_faults_report_the_first_in_file_order(tmp_path):
+    """A bad value on line 5 comes before a bad value in [gradient] and before a missing
+    [mobile_phase] table (which has no line): the user fixes faults top to bottom."""
+    text = FULL.replace("particle_um = 1.7", "particle_um = 0.1")
+    text = text.replace("flow_ml_min = 0.4", "flow_ml_min = -1")
+    start, end = text.index("[mobile_phase]"), text.index("[gradient]")
+    with pytest.raises(MethodError) as info:
+        load_method(write(tmp_path, text[:start] + text[end:]))
+    assert (info.value.line, info.value.field) == (5, "column.particle_um")
+    # with the column fixed, the gradient fault (which has a line) still precedes the
+    # missing table; with both fixed, the missing table is reported
+    text = text.replace("particle_um = 0.1", "particle_um = 1.7")
+    with pytest.raises(MethodError) as info:
+        load_method(write(tmp_path, text[:start] + text[end:]))
+    assert info.value.field == "gradient.flow_ml_min"
+    fixed = text.replace("flow_ml_min = -1", "flow_ml_min = 0.4")
+    with pytest.raises(MethodError, match=r"missing required table \[mobile_phase\]"):
+        load_method(write(tmp_path, fixed[:start] + fixed[end:]))
+
+
 def test_typo_suggests_closest_key(tmp_path):
     text = FULL.replace("dwell_volume_ml", "dwel_volume_ml")
     with pytest.raises(MethodError, match="did you mean 'dwell_volume_ml'"):
