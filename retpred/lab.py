@@ -88,6 +88,34 @@ def _apply(lin, gbm, base, x):
     return out
 
 
+def select_correction(base_lk: np.ndarray, obs_lk: np.ndarray, x: np.ndarray,
+                      obs_rt: np.ndarray, rt_of, n_splits: int = 5, seed: int = 0):
+    """Choose the correction by ``n_splits``-fold cross-validation over compounds and fit it.
+
+    ``obs_lk`` is NaN for compounds measured at or before the dead time: they have no
+    log kw to fit, but they are measurements all the same and count in the cross-validated
+    time error (a correction fitted on the retained compounds alone is biased towards more
+    retention and would move the unretained ones later). ``rt_of(log_kw, sel)`` gives the
+    times of the rows ``sel`` on their own methods. The simplest candidate within
+    ``SELECT_TOLERANCE`` of the lowest median |error| wins and is refitted on every retained
+    compound. Returns ``(kind, {kind: CV median |error| min}, line, gbm)``.
+    """
+    retained = np.isfinite(obs_lk)
+    folds = KFold(n_splits=n_splits, shuffle=True, random_state=seed)
+    errs = {k: [] for k in CANDIDATES}
+    for tr, te in folds.split(base_lk):
+        tr = tr[retained[tr]]
+        for kind in CANDIDATES:
+            lin, gbm = _fit_correction(base_lk[tr], obs_lk[tr], x[tr], kind)
+            pred = _apply(lin, gbm, base_lk[te], x[te])
+            errs[kind].append(np.abs(rt_of(pred, te) - obs_rt[te]))
+    metrics = {k: float(np.nanmedian(np.concatenate(v))) for k, v in errs.items()}
+    lowest = min(metrics.values())
+    best = next(k for k in CANDIDATES if metrics[k] <= (1 + SELECT_TOLERANCE) * lowest)
+    lin, gbm = _fit_correction(base_lk[retained], obs_lk[retained], x[retained], best)
+    return best, metrics, lin, gbm
+
+
 def train_lab_model(
     data: Sequence[Path], methods: Sequence[Path], *, out: Path, base_model: Path | None = None,
     force: bool = False, quiet: bool = False,
@@ -126,10 +154,8 @@ def train_lab_model(
         base_lk[m], s[m] = lk, ss
         obs_lk[m] = log_kw_from_rt(rt[m], ss, prep.program)
         meoh[m] = 1.0 if prep.context.organic == "methanol" else 0.0
-    # Compounds measured at or before the dead time have no log kw to fit, but they are
-    # measurements all the same: they count in the cross-validated time error that chooses
-    # the correction (a correction fitted on the retained compounds alone is biased towards
-    # more retention, and would move the unretained ones later).
+    # compounds eluting at or before t0 (no log kw) still count in the choice: see
+    # select_correction
     usable = np.isfinite(base_lk)
     n_ok = int((usable & np.isfinite(obs_lk)).sum())
     if n_ok < MIN_COMPOUNDS:
@@ -139,7 +165,6 @@ def train_lab_model(
     idx = np.flatnonzero(usable)
     x = solute_matrix(sol, idx, meoh[idx])
     b, o = base_lk[idx], obs_lk[idx]
-    retained = np.isfinite(o)
 
     def rt_of(lk, sel):
         res = np.full(sel.size, np.nan)
@@ -149,18 +174,7 @@ def train_lab_model(
                 res[m] = elute(lk[m], s[idx][sel][m], prep.program).rt_min
         return res
 
-    folds = KFold(n_splits=5, shuffle=True, random_state=0)
-    errs = {k: [] for k in CANDIDATES}
-    for tr, te in folds.split(idx):
-        obs_rt = rt[idx][te]
-        tr = tr[retained[tr]]
-        for kind in CANDIDATES:
-            lin, gbm = _fit_correction(b[tr], o[tr], x[tr], kind)
-            errs[kind].append(np.abs(rt_of(_apply(lin, gbm, b[te], x[te]), te) - obs_rt))
-    metrics = {k: float(np.nanmedian(np.concatenate(v))) for k, v in errs.items()}
-    lowest = min(metrics[k] for k in CANDIDATES)
-    best = next(k for k in CANDIDATES if metrics[k] <= (1 + SELECT_TOLERANCE) * lowest)
-    lin, gbm = _fit_correction(b[retained], o[retained], x[retained], best)
+    best, metrics, lin, gbm = select_correction(b, o, x, rt[idx], rt_of)
     lab = copy.copy(base)
     lab.lab_neighbours_ = lin.pop("neighbours", None)
     lab.lab_linear_ = lin
@@ -171,7 +185,7 @@ def train_lab_model(
         "lab_training_files": [str(p) for p in data],
         "lab_training_sha256": data_fingerprint(*(Path(p).read_bytes() for p in data)),
         "lab_n_compounds": n_ok,
-        "lab_n_unretained": int((~retained).sum()),
+        "lab_n_unretained": int(np.isnan(o).sum()),
         "lab_cv_median_abs_error_min": metrics,
         "lab_correction": {"lab_linear": "linear", "lab_model": "linear + gradient boosting",
                            "lab_neighbours": "linear + neighbours",
