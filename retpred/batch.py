@@ -50,8 +50,8 @@ from retpred.cache import FeatureCache, Known, featurise_known, open_cache
 from retpred.errors import InputError
 from retpred.io import AnalyteChunk, atomic_output, check_output_target, iter_analytes
 from retpred.model import featurise
-from retpred.peaks import resolution, unresolved_probability
-from retpred.predict import OUTPUT_COLUMNS, Z90, Prepared, predict_solutes
+from retpred.peaks import resolution, time_error_sd_min, unresolved_probability
+from retpred.predict import OUTPUT_COLUMNS, Prepared, predict_solutes
 
 #: Columns filled by pass 2 (over the whole list).
 PAIR_COLUMNS = ("elution_order", "resolution_next", "coelution_risk", "coelutes_with")
@@ -443,8 +443,7 @@ def whole_list_pairs(rt_min, peak_width_min, rt_low_min, rt_high_min, rho: float
     rt = np.asarray(rt_min, dtype=float)
     n = rt.shape[0]
     sigma = np.asarray(peak_width_min, dtype=float) / 4.0
-    half = (np.asarray(rt_high_min, dtype=float) - np.asarray(rt_low_min, dtype=float)) / 2
-    sd = np.where(np.isfinite(half), sd_scale * half / Z90, np.nan)
+    sd = time_error_sd_min(rt, rt_low_min, rt_high_min, sd_scale)
     valid = np.flatnonzero(np.isfinite(rt))
     order = valid[np.argsort(rt[valid], kind="stable")]
     elution = np.zeros(n, dtype=np.int64)

@@ -20,7 +20,7 @@ from sklearn.model_selection import GroupKFold
 
 from retpred.calibration import SoluteTraits, fit_calibration
 from retpred.chemistry import ionise
-from retpred.gradient import elute
+from retpred.gradient import STATUS_NOT_ELUTED, elute
 from retpred.training import TrainingSet, fit_model
 
 ORDER_MIN_GAP_MIN = 0.5
@@ -168,6 +168,17 @@ def split_quantiles(resid: np.ndarray, novel: np.ndarray, q=(0.05, 0.95)):
     return pooled, (np.quantile(resid[nv], q) if nv.sum() >= 200 else pooled)
 
 
+def interval_hits(obs_rt, pred_lk, q_lo, q_hi, s, prog) -> np.ndarray:
+    """Whether each observed time lies in the prediction interval [elute(lk + q_lo S),
+    elute(lk + q_hi S)], as ``predict`` builds it. An upper end that would not elute within
+    the run (``rt_high_min`` empty in the output) is unbounded: every observed time of the
+    run lies below it."""
+    lo = elute(pred_lk + q_lo * s, s, prog).rt_min
+    up = elute(pred_lk + q_hi * s, s, prog)
+    hi = np.where(up.status == STATUS_NOT_ELUTED, np.inf, up.rt_min)
+    return (obs_rt >= lo) & (obs_rt <= hi)
+
+
 def evaluate(ts: TrainingSet, fp: FoldPredictions, n_draws: int = 5, seed: int = 0,
              quantiles=(0.05, 0.95)) -> pd.DataFrame:
     """One row per left-out system with model and baseline figures."""
@@ -202,9 +213,7 @@ def evaluate(ts: TrainingSet, fp: FoldPredictions, n_draws: int = 5, seed: int =
         if novel.sum() >= 5:
             row["zero_novel_medae_pct"] = system_metrics(obs[novel], rt_zero[novel])[
                 "medae_pct"]
-        lo = elute(pred_lk + q_lo * s, s, prog).rt_min
-        hi = elute(pred_lk + q_hi * s, s, prog).rt_min
-        inside = (obs >= lo) & (obs <= hi)
+        inside = interval_hits(obs, pred_lk, q_lo, q_hi, s, prog)
         row["zero_interval_coverage"] = float(np.mean(inside))
         row["zero_interval_hits"] = int(inside.sum())
         row["zero_novel_interval_hits"] = int(inside[novel].sum())
@@ -254,9 +263,7 @@ def evaluate(ts: TrainingSet, fp: FoldPredictions, n_draws: int = 5, seed: int =
         q_seen, q_new = fold_q[f]
         q_lo = np.where(nv, q_new[0], q_seen[0])
         q_hi = np.where(nv, q_new[1], q_seen[1])
-        lo = elute(lk_cal + q_lo * s_r, s_r, prog).rt_min
-        hi = elute(lk_cal + q_hi * s_r, s_r, prog).rt_min
-        inside = (obs_r >= lo) & (obs_r <= hi)
+        inside = interval_hits(obs_r, lk_cal, q_lo, q_hi, s_r, prog)
         hits[ri] += np.sum(inside)
         total[ri] += obs_r.size
         novel_hits[ri] += np.sum(inside[nv])
@@ -359,7 +366,7 @@ def coelution_pairs(ts: TrainingSet, fp: FoldPredictions, q_phi: tuple[float, fl
     the phi-space quantiles (``q_phi_novel`` for compounds new to the fold's training, as
     ``predict`` does for structures not in the model's memory), sd = half-width / 1.645,
     neighbour correlation ``rho``."""
-    from retpred.peaks import peak_sigma_min, unresolved_probability
+    from retpred.peaks import peak_sigma_min, time_error_sd_min, unresolved_probability
 
     rng = np.random.default_rng(seed)
     novel_all = novel_rows(ts, fp) if q_phi_novel is not None else None
@@ -386,9 +393,9 @@ def coelution_pairs(ts: TrainingSet, fp: FoldPredictions, q_phi: tuple[float, fl
         mw = ts.solutes.mw[ts.solute_idx[m][keep]]
         sigma = peak_sigma_min(prog.dead_time_min, el.k_elution,
                                _plates_for(system, el.phi_elution, mw))
-        sd = (hi - lo) / 2 / 1.6448536269514722
         obs = ts.rt_min[m][keep]
         rt = el.rt_min
+        sd = time_error_sd_min(rt, lo, hi)
         ok = np.flatnonzero(np.isfinite(rt) & np.isfinite(sigma) & np.isfinite(sd))
         order = ok[np.argsort(rt[ok], kind="stable")]
         a, b = order[:-1], order[1:]

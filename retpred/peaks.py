@@ -68,6 +68,21 @@ def unresolved_probability(
     return np.where(np.isfinite(d) & np.isfinite(w) & np.isfinite(sd), out, np.nan)
 
 
+#: Standard normal 95th percentile: a central 90 % interval spans +/- Z90 sd.
+Z90 = 1.6448536269514722
+
+
+def time_error_sd_min(rt_min, rt_low_min, rt_high_min, scale=1.0) -> np.ndarray:
+    """Time-error sd from a central 90 % prediction interval, ``scale`` x half-width / Z90
+    (normal errors). Where the upper end is open (it would not elute within the run), the
+    lower half-width ``rt - rt_low`` stands in for the half-width."""
+    rt = np.asarray(rt_min, dtype=float)
+    lo = np.asarray(rt_low_min, dtype=float)
+    hi = np.asarray(rt_high_min, dtype=float)
+    half = np.where(np.isfinite(hi), (hi - lo) / 2.0, rt - lo)
+    return scale * half / Z90
+
+
 @dataclass
 class PairTable:
     """Neighbour pairs of a predicted chromatogram. Arrays are indexed like the input

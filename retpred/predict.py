@@ -19,13 +19,12 @@ from retpred.column import column_hsm, dead_time_min, plate_number
 from retpred.gradient import STATUS_OK, ElutionProgram, elute, log_kw_from_rt, program_from_method
 from retpred.method import Method
 from retpred.model import RetentionModel, Solutes, SystemContext, featurise
-from retpred.peaks import neighbour_pairs, peak_sigma_min
+from retpred.peaks import neighbour_pairs, peak_sigma_min, time_error_sd_min
 
 STATUS_OUTSIDE_DOMAIN = "outside training domain (estimate less certain)"
 
 #: Nominal coverage of the prediction interval [rt_low_min, rt_high_min].
 INTERVAL_COVERAGE = 0.90
-Z90 = 1.6448536269514722  # standard normal 95th percentile
 
 OUTPUT_COLUMNS = (
     "name", "smiles", "status", "rt_min", "rt_low_min", "rt_high_min", "elution_order",
@@ -171,10 +170,9 @@ def add_pairs(table: pd.DataFrame, model: RetentionModel) -> pd.DataFrame:
     """
     rt = table["rt_min"].to_numpy(dtype=float)
     sigma = table["peak_width_min"].to_numpy(dtype=float) / 4.0
-    half = (table["rt_high_min"].to_numpy(float) - table["rt_low_min"].to_numpy(float)) / 2
     # pair_sd_scale: fitted on left-out pairs so that the risk is calibrated (model card)
     scale = float(model.residual_sd_.get("pair_sd_scale", 1.0))
-    sd = np.where(np.isfinite(half), scale * half / Z90, np.nan)
+    sd = time_error_sd_min(rt, table["rt_low_min"], table["rt_high_min"], scale)
     rho = float(model.residual_sd_.get("neighbour_rho", 0.0))
     pairs = neighbour_pairs(rt, sigma, table["name"].astype(str).tolist(), sd, rho=rho)
     out = table.copy()

@@ -15,6 +15,7 @@ from retpred.evaluation import (
     coelution_pairs,
     cross_validate,
     fit_pair_sd_scale,
+    interval_hits,
     order_accuracy,
     ph_series,
     ph_shift_agreement,
@@ -22,6 +23,24 @@ from retpred.evaluation import (
     residual_quantiles,
     system_metrics,
 )
+
+
+def test_interval_hits_isocratic_closed_form_and_unbounded_upper_end():
+    """Isocratic tR = t0 (1 + k), k = 10^(log kw - S phi) (LSS; retention-physics.md
+    sections 2-3). t0 = 1 min, phi = 0.4, S = 4, log kw = 1: the interval at q = -/+0.1 phi
+    units is [t0 (1 + 10^-1.0), t0 (1 + 10^-0.2)] = [1.100, 1.631] min. An upper end that
+    never elutes (k above the isocratic limit) leaves the interval open upwards."""
+    from retpred.gradient import build_program
+
+    prog = build_program([0.0], [0.4], [1.0], dead_time_min=1.0, dwell_volume_ml=0.5)
+    lk, s = np.full(5, 1.0), np.full(5, 4.0)
+    obs = np.array([1.09, 1.11, 1.5, 1.62, 1.64])
+    hits = interval_hits(obs, lk, -0.1, 0.1, s, prog)
+    assert hits.tolist() == [False, True, True, True, False]
+    # log kw 2.2: tR = 1 + 10^0.6 = 4.98 min; upper end log kw 6.2 -> k = 10^4.6, not eluted
+    far = interval_hits(np.array([2.5, 5.0, 500.0]), np.full(3, 2.2), -0.1, 1.0,
+                        np.full(3, 4.0), prog)
+    assert far.tolist() == [False, True, True]  # lower end 1 + 10^0.2 = 2.58 min
 
 
 def test_order_accuracy_matches_brute_force():

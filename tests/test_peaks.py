@@ -20,6 +20,7 @@ from retpred.peaks import (
     peak_sigma_min,
     resolution,
     simulate_chromatogram,
+    time_error_sd_min,
     unresolved_probability,
 )
 
@@ -138,3 +139,18 @@ def test_neighbour_pairs_correlated_errors_monte_carlo():
     # with perfectly correlated equal errors the spacing is certain
     exact = neighbour_pairs(rt, sigma, ["x", "y"], 0.1, rho=1.0)
     assert exact.coelution_risk[0] == 0.0
+
+
+def test_time_error_sd_from_a_90_percent_interval():
+    """A central 90 % interval of a normal error spans +/- z sd with z = Phi^-1(0.95)
+    (scipy.stats.norm as the reference). An open upper end (not eluted within the run) uses
+    the lower half-width."""
+    from scipy.stats import norm
+
+    z = norm.ppf(0.95)
+    sd = time_error_sd_min([5.0, 8.0, 9.0], [4.0, 6.0, 7.5], [6.0, 11.0, np.nan])
+    np.testing.assert_allclose(sd, [1.0 / z, 2.5 / z, 1.5 / z], rtol=1e-12)
+    # seeded Monte-Carlo: the recovered sd of normal errors from their 5/95 % quantiles
+    e = np.random.default_rng(3).normal(0.0, 0.4, 200_000)
+    lo, hi = np.quantile(e, [0.05, 0.95])
+    assert time_error_sd_min(0.0, lo, hi) == pytest.approx(0.4, rel=0.01)
