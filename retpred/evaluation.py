@@ -183,7 +183,7 @@ def evaluate(ts: TrainingSet, fp: FoldPredictions, n_draws: int = 5, seed: int =
              quantiles=(0.05, 0.95)) -> pd.DataFrame:
     """One row per left-out system with model and baseline figures."""
     rng = np.random.default_rng(seed)
-    resid = (ts.log_kw - fp.log_kw) / ts.s  # elution-composition error, phi units
+    resid = phi_residuals(ts, fp)
     rows = []
     # compounds no training fold saw; their intervals use the quantiles of novel rows
     novel_all = novel_rows(ts, fp)
@@ -303,10 +303,16 @@ def summarise(table: pd.DataFrame) -> dict:
     return out
 
 
+def phi_residuals(ts: TrainingSet, fp: FoldPredictions) -> np.ndarray:
+    """Held-out error in elution-composition units, (obs - pred) log kw / S: an interval
+    ``log kw + q S`` widens with S as a gradient's time error does. NaN for rows eluting at
+    or before t0."""
+    return (ts.log_kw - fp.log_kw) / ts.s
+
+
 def residual_quantiles(ts: TrainingSet, fp: FoldPredictions, q=(0.05, 0.95)) -> list[float]:
-    """Quantiles of the held-out error in elution-composition units, (obs - pred) / S:
-    an interval ``log kw + q S`` widens with S as a gradient's time error does."""
-    r = (ts.log_kw - fp.log_kw) / ts.s
+    """Quantiles of the finite :func:`phi_residuals`."""
+    r = phi_residuals(ts, fp)
     r = r[np.isfinite(r)]
     return [float(v) for v in np.quantile(r, q)]
 

@@ -45,6 +45,9 @@ from retpred.method import (
 )
 
 ENV_VAR = "RETPRED_OPEN_RP"
+#: What to say when :func:`find_open_data` finds nothing (tests skip with it, scripts exit).
+NOT_FOUND_MESSAGE = (f"open retention data not found: set {ENV_VAR} or place it at "
+                     "../shared/datasets/open-rp next to the checkout")
 _PHASE_MAP = {
     "C18": "C18",
     "C8": "C8",

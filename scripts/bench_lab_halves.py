@@ -30,7 +30,7 @@ from retpred.evaluation import _scored_systems, cross_validate  # noqa: E402
 from retpred.gradient import elute  # noqa: E402
 from retpred.lab import _apply, select_correction  # noqa: E402
 from retpred.model import solute_matrix  # noqa: E402
-from retpred.opendata import find_open_data, load_systems  # noqa: E402
+from retpred.opendata import NOT_FOUND_MESSAGE, find_open_data, load_systems  # noqa: E402
 from retpred.training import load_open_training_set  # noqa: E402
 
 TARGET_RATIO = 0.7
@@ -65,7 +65,7 @@ def main(argv=None) -> int:
     args = ap.parse_args(argv)
     root = find_open_data(args.data)
     if root is None:
-        print("open data not found: give --data or set RETPRED_OPEN_RP", file=sys.stderr)
+        print(f"{NOT_FOUND_MESSAGE} (or give --data)", file=sys.stderr)
         return 2
     t_start = time.perf_counter()
     ids = {s.dataset for s in load_systems(root)[:: args.step]} if args.step > 1 else None

@@ -37,6 +37,7 @@ from retpred.evaluation import (  # noqa: E402
     fit_pair_sd_scale,
     novel_rows,
     ph_shift_agreement,
+    phi_residuals,
     rescore_pairs,
     risk_calibration_table,
     split_quantiles,
@@ -45,7 +46,7 @@ from retpred.evaluation import (  # noqa: E402
 from retpred.io import atomic_output, atomic_output_path  # noqa: E402
 from retpred.model import data_fingerprint, now_utc  # noqa: E402
 from retpred.modelfile import DEFAULT_MODEL_NAME, MODELS_DIR, save_model, sha256_file  # noqa: E402
-from retpred.opendata import find_open_data  # noqa: E402
+from retpred.opendata import NOT_FOUND_MESSAGE, find_open_data  # noqa: E402
 from retpred.training import fit_model, load_open_training_set  # noqa: E402
 
 #: Fixed subset used by the test that checks the shipped model reproduces its figures:
@@ -64,7 +65,7 @@ def main(argv=None) -> int:
     args = ap.parse_args(argv)
     root = find_open_data(args.data)
     if root is None:
-        print("open data not found: give --data or set RETPRED_OPEN_RP", file=sys.stderr)
+        print(f"{NOT_FOUND_MESSAGE} (or give --data)", file=sys.stderr)
         return 2
     t_start = time.perf_counter()
     ts = load_open_training_set(root)
@@ -77,7 +78,7 @@ def main(argv=None) -> int:
     # them for structures outside the compound memory)
     novel = novel_rows(ts, fp)
     q_zero, q_zero_new = (list(map(float, q)) for q in
-                          split_quantiles((ts.log_kw - fp.log_kw) / ts.s, novel))
+                          split_quantiles(phi_residuals(ts, fp), novel))
     q_cal, q_cal_new, rho = calibrated_residual_quantiles(ts, fp, rows=novel)
     pairs = coelution_pairs(ts, fp, tuple(q_cal), rho, calibrated=True,
                             q_phi_novel=tuple(q_cal_new))

@@ -7,7 +7,7 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from retpred.opendata import find_open_data
+from retpred.opendata import NOT_FOUND_MESSAGE, find_open_data
 
 REPO = Path(__file__).resolve().parent.parent
 DEMO = REPO / "datasets" / "demo"
@@ -20,10 +20,7 @@ SMALL_TRAIN_STEP = 15
 def open_data() -> Path:
     root = find_open_data()
     if root is None:
-        pytest.skip(
-            "open retention data not found: set RETPRED_OPEN_RP or place it at "
-            "../shared/datasets/open-rp next to the checkout"
-        )
+        pytest.skip(NOT_FOUND_MESSAGE)
     return root
 
 
