@@ -10,7 +10,7 @@ gradient-boosting model (zero-shot scaled by the program length, and + calibrant
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 
 import numpy as np
 import pandas as pd
@@ -102,8 +102,13 @@ def calibrate_on(pred_lk, obs_lk, obs_rt, s, prog, pick, traits=None):
                            traits=None if traits is None else traits.take(pick))
 
 
-def row_traits(ts: TrainingSet, rows: np.ndarray) -> SoluteTraits:
-    return SoluteTraits.of(ts.solutes, ts.solute_idx[rows])
+def row_traits(ts: TrainingSet, rows: np.ndarray, fp: FoldPredictions | None = None
+               ) -> SoluteTraits:
+    """Traits of ``rows``, with the compound factors of each row's fold model (``fp``)."""
+    tr = SoluteTraits.of(ts.solutes, ts.solute_idx[rows])
+    if fp is not None and fp.factors is not None:
+        tr = replace(tr, factors=fp.factors[rows])
+    return tr
 
 
 @dataclass
@@ -111,6 +116,8 @@ class FoldPredictions:
     log_kw: np.ndarray  # held-out predicted log kw per row
     fold: np.ndarray  # fold id per row
     baseline_frac: np.ndarray  # descriptor-GBM prediction of rt / program end
+    #: compound factors per row, from the model of the row's fold (zeros where it has none)
+    factors: np.ndarray | None = None
 
 
 def descriptor_baseline(ts: TrainingSet, train: np.ndarray, test: np.ndarray) -> np.ndarray:
@@ -132,6 +139,7 @@ def cross_validate(ts: TrainingSet, n_folds: int = 5, with_baseline: bool = True
     lk = np.full(ts.rt_min.size, np.nan)
     base = np.full(ts.rt_min.size, np.nan)
     fold = np.full(ts.rt_min.size, -1)
+    factors = None
     for f, (tr, te) in enumerate(GroupKFold(n_splits=n_folds).split(ts.rt_min, groups=groups)):
         trm = np.zeros(ts.rt_min.size, bool)
         trm[tr] = True
@@ -140,10 +148,14 @@ def cross_validate(ts: TrainingSet, n_folds: int = 5, with_baseline: bool = True
         lk[tem] = model.retention_parameters(
             ts.solutes, ts.contexts, which=ts.system_idx[tem], idx=ts.solute_idx[tem]
         )[0]
+        fac = model.factor_matrix(ts.solutes, ts.solute_idx[tem])
+        if factors is None:
+            factors = np.zeros((ts.rt_min.size, fac.shape[1]))
+        factors[tem] = fac
         if with_baseline:
             base[tem] = descriptor_baseline(ts, tr, te)
         fold[tem] = f
-    return FoldPredictions(log_kw=lk, fold=fold, baseline_frac=base)
+    return FoldPredictions(log_kw=lk, fold=fold, baseline_frac=base, factors=factors)
 
 
 def novel_rows(ts: TrainingSet, fp: FoldPredictions) -> np.ndarray:
@@ -202,7 +214,7 @@ def evaluate(ts: TrainingSet, fp: FoldPredictions, n_draws: int = 5, seed: int =
         q_lo = np.where(novel, q_new[0], q_seen[0])
         q_hi = np.where(novel, q_new[1], q_seen[1])
         pred_lk = fp.log_kw[m]
-        tr = row_traits(ts, m)
+        tr = row_traits(ts, m, fp)
         rt_zero = elute(pred_lk, s, prog).rt_min
         row = {"dataset": system.dataset, "group": system.group, "n": m.size,
                "phase": system.phase, "organic": system.organic, "ph": system.ph,
@@ -332,7 +344,7 @@ def calibrated_residual_quantiles(ts: TrainingSet, fp: FoldPredictions, q=(0.05,
         pred = fp.log_kw[m]
         pick = rng.choice(m.size, N_CALIBRANTS, replace=False)
         rest = np.setdiff1d(np.arange(m.size), pick)
-        tr = row_traits(ts, m)
+        tr = row_traits(ts, m, fp)
         cal = calibrate_on(pred, ts.log_kw[m], ts.rt_min[m], s, prog, pick, tr)
         corr = cal.apply(pred[rest], tr.take(rest))
         res_all.append((ts.log_kw[m][rest] - corr) / s[rest])
@@ -385,7 +397,7 @@ def coelution_pairs(ts: TrainingSet, fp: FoldPredictions, q_phi: tuple[float, fl
         keep = np.arange(m.size)
         if calibrated:
             pick = rng.choice(m.size, N_CALIBRANTS, replace=False)
-            tr = row_traits(ts, m)
+            tr = row_traits(ts, m, fp)
             pred = calibrate_on(pred, ts.log_kw[m], ts.rt_min[m], s, prog, pick, tr).apply(
                 pred, tr)
             keep = np.setdiff1d(keep, pick)

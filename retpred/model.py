@@ -25,6 +25,13 @@ structure. It is constant across systems, so it never changes a predicted pH or 
 shift. Compounds are keyed by a hash of their standardised SMILES, so the model file holds
 no structure of the open data.
 
+The compound factors ``v`` (``factors_``) are what the open data say of how a compound's
+retention differs from system to system beyond any linear map of ``log kw``: a rank-3
+factorisation ``e_ij = v_i . w_j`` of the training residuals left after a per-system line
+(:func:`fit_compound_factors`). They do not enter the prediction itself; a calibration
+estimates the loadings ``w`` of the user's system from its reference compounds
+(``retpred.calibration``) and corrects the analytes that have factors.
+
 Training turns every observed time into ``log kw`` exactly through the gradient engine
 (``retpred.gradient.log_kw_from_rt``) with that system's own program.
 """
@@ -56,7 +63,7 @@ from retpred.method import HsmParameters
 from retpred.structures import StandardisedBatch, standardise_mols, standardise_smiles
 
 #: Model-file format version; a file of another format is refused.
-MODEL_FORMAT = 5
+MODEL_FORMAT = 6
 N_BITS = 256
 #: Snyder and Dolan's rule of thumb S = 0.25 M^0.5 (retention-physics.md section 2).
 S_RULE_COEF = 0.25
@@ -75,6 +82,14 @@ REFERENCE_TEMPERATURE_C = 30.0
 #: and 3 (DEVELOPERS.md "Compound memory").
 MEMORY_SHRINK = 1.0
 MEMORY_ITERATIONS = 5
+#: Compound factors: rank, ridge penalty on each compound's factor vector (the loadings of
+#: the training systems get 1.0 too), least number of training systems a compound needs,
+#: alternating-least-squares sweeps. Chosen with the calibration they serve on the
+#: left-out-source CV (DEVELOPERS.md "Compound factors").
+FACTOR_RANK = 3
+FACTOR_SHRINK = 1.0
+FACTOR_MIN_SYSTEMS = 3
+FACTOR_ITERATIONS = 15
 
 
 def _d(name: str) -> int:
@@ -269,6 +284,8 @@ class RetentionModel:
     lab_neighbours_: dict | None = None
     #: compound memory {structure key: log kw offset} (see :func:`fit_compound_memory`)
     memory_: dict = field(default_factory=dict)
+    #: compound factors {structure key: [v_1, ..., v_k]} (see :func:`fit_compound_factors`)
+    factors_: dict = field(default_factory=dict)
 
     # --- prediction ------------------------------------------------------------------
     def retention_parameters(
@@ -312,6 +329,19 @@ class RetentionModel:
         """Compound-memory offset ``u`` of rows ``idx`` (0 for structures not in training)."""
         mem, keys = self.memory_, solutes.memory_keys
         return np.array([mem.get(keys[i], 0.0) for i in idx], dtype=float)
+
+    def factor_matrix(self, solutes: Solutes, idx: np.ndarray | None = None) -> np.ndarray:
+        """(rows, rank) compound factors of rows ``idx`` (default all); zeros for structures
+        without factors (new to the training data, or seen on too few systems)."""
+        idx = np.arange(len(solutes)) if idx is None else np.asarray(idx)
+        fac, keys = self.factors_, solutes.memory_keys
+        rank = len(next(iter(fac.values()))) if fac else FACTOR_RANK
+        out = np.zeros((idx.size, rank))
+        for r, i in enumerate(idx):
+            v = fac.get(keys[i]) if solutes.usable[i] else None
+            if v is not None:
+                out[r] = v
+        return out
 
     def known(self, solutes: Solutes) -> np.ndarray:
         """True where a usable structure is in the compound memory (it was in training)."""
@@ -372,6 +402,7 @@ class RetentionModel:
         self.gbm_ = gbm
         self.lab_linear_ = self.lab_gbm_ = self.lab_neighbours_ = None
         self.memory_ = {}
+        self.factors_ = {}
         self.domain_ = fit_domain(solutes.descriptors[np.unique(idx)])
         idx, which = np.asarray(idx), np.asarray(which)
         resid = log_kw_obs - self.retention_parameters(solutes, contexts, which, idx)[0]
@@ -380,6 +411,14 @@ class RetentionModel:
         sm = solutes.batch.smiles
         self.memory_ = {compound_key(sm[k]): round(float(v), 5)
                         for k, v in zip(keys, offsets, strict=True)}
+        u = np.zeros(len(solutes))
+        u[keys] = offsets
+        rows = np.flatnonzero(ok)
+        pred_lk = log_kw_obs[rows] - resid[rows] + u[idx[rows]]
+        comps, v = fit_compound_factors(log_kw_obs[rows], pred_lk, idx[rows], which[rows],
+                                        seed=self.random_state)
+        self.factors_ = {compound_key(sm[k]): [round(float(a), 5) for a in row]
+                         for k, row in zip(comps, v, strict=True)}
         return self
 
     def outside_domain(self, solutes: Solutes) -> np.ndarray:
@@ -428,6 +467,59 @@ def fit_compound_memory(
         a = np.bincount(si, resid - u[ci]) / n_s
         u = np.bincount(ci, resid - a[si], minlength=comps.size) / (n_c + shrink)
     return comps, u
+
+
+def _groups(labels: np.ndarray, n: int) -> list[np.ndarray]:
+    """Row indices of each label ``0 .. n-1``."""
+    order = np.argsort(labels, kind="stable")
+    bounds = np.searchsorted(labels[order], np.arange(n + 1))
+    return [order[bounds[i]:bounds[i + 1]] for i in range(n)]
+
+
+def _ridge_rows(a: np.ndarray, r: np.ndarray, lam: float) -> np.ndarray:
+    """``(A^T A + lam I)^-1 A^T r``."""
+    return np.linalg.solve(a.T @ a + lam * np.eye(a.shape[1]), a.T @ r)
+
+
+def fit_compound_factors(
+    log_kw_obs: np.ndarray, log_kw_pred: np.ndarray, compound: np.ndarray,
+    system: np.ndarray, rank: int = FACTOR_RANK, shrink: float = FACTOR_SHRINK,
+    min_systems: int = FACTOR_MIN_SYSTEMS, n_iter: int = FACTOR_ITERATIONS, seed: int = 0,
+) -> tuple[np.ndarray, np.ndarray]:
+    """Compound factors of the interaction model ``e_ij = v_i . w_j + noise``.
+
+    ``e`` is what is left of ``log kw`` on each system after the least-squares line of
+    observed on predicted (the part a calibration's linear map absorbs). ``v`` (compounds
+    with ``min_systems`` or more training rows, one per system) and ``w`` (systems) are
+    fitted by alternating ridge regressions, ``v_i = (W_i^T W_i + shrink I)^-1 W_i^T e_i``
+    and likewise ``w_j`` with penalty 1: a low-rank completion of the compound x system
+    residual matrix. Returns ``(compounds, v)``; ``w`` is not kept (a user's system gets its
+    own from its calibrants).
+    """
+    e = np.asarray(log_kw_obs, dtype=float) - log_kw_pred
+    systems, si = np.unique(system, return_inverse=True)
+    for rows in _groups(si, systems.size):
+        if rows.size >= 3:
+            b = np.polyfit(log_kw_pred[rows], log_kw_obs[rows], 1)
+            e[rows] = log_kw_obs[rows] - np.polyval(b, log_kw_pred[rows])
+        else:
+            e[rows] -= e[rows].mean()
+    comps, ci = np.unique(compound, return_inverse=True)
+    keep = np.bincount(ci)[ci] >= min_systems
+    if not keep.any():
+        return np.array([], dtype=int), np.zeros((0, rank))
+    e, compound, system = e[keep], np.asarray(compound)[keep], np.asarray(system)[keep]
+    comps, ci = np.unique(compound, return_inverse=True)
+    systems, si = np.unique(system, return_inverse=True)
+    c_rows, s_rows = _groups(ci, comps.size), _groups(si, systems.size)
+    v = 0.1 * np.random.default_rng(seed).standard_normal((comps.size, rank))
+    w = np.zeros((systems.size, rank))
+    for _ in range(n_iter):
+        for j, rows in enumerate(s_rows):
+            w[j] = _ridge_rows(v[ci[rows]], e[rows], 1.0)
+        for i, rows in enumerate(c_rows):
+            v[i] = _ridge_rows(w[si[rows]], e[rows], shrink)
+    return comps, v
 
 
 #: Training structures whose Mahalanobis distance stays within this quantile define the

@@ -84,7 +84,7 @@ def retention(prep: Prepared, solutes: Solutes) -> tuple[np.ndarray, np.ndarray]
     """Calibrated ``(log kw, S)`` of a batch on the prepared method."""
     log_kw, s = prep.model.retention_parameters(solutes, prep.context)
     if prep.calibration is not None:
-        log_kw = prep.calibration.apply(log_kw, SoluteTraits.of(solutes))
+        log_kw = prep.calibration.apply(log_kw, SoluteTraits.of(solutes, model=prep.model))
     return log_kw, s
 
 
@@ -202,7 +202,7 @@ def calibrate(
 
     return fit_calibration(
         log_kw, obs, rt_obs, rt_of, names=list(names), method_summary=method_summary(prep.method),
-        traits=SoluteTraits.of(sol),
+        traits=SoluteTraits.of(sol, model=prep.model),
     )
 
 

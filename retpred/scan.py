@@ -321,7 +321,9 @@ def retention_grid(
             lk, _ = model.retention_parameters(solutes, list(contexts), which=which,
                                                idx=np.tile(np.arange(n), k))
             grid = lk.reshape(k, n)
-    log_kw = grid if calibration is None else calibration.apply(grid, SoluteTraits.of(solutes))
+    if calibration is not None:
+        grid = calibration.apply(grid, SoluteTraits.of(solutes, model=model))
+    log_kw = grid
     return log_kw, s, ion_kn
 
 

@@ -139,6 +139,8 @@ def run_predict(
             + (f", leave-one-out median error {cal.loo_median_abs_error_min:.2f} min"
                if np.isfinite(cal.loo_median_abs_error_min) else "")
         )
+        if cal.factor_note():
+            notes.append(cal.factor_note())
         notes.extend(cal.warnings)
         from retpred.calibration import coverage_warning
 
@@ -280,6 +282,8 @@ def run_calibrate(calibrants, method_path, *, out, model=None, force=False, quie
                 f"{method_summary(method)}")
         for kind, e in cal.loo_errors_min.items():
             c.print(f"  leave-one-out median |error| with '{kind}': {e:.3f} min")
+        if cal.factor_note():
+            c.print(f"  {cal.factor_note()}")
         for w in cal.warnings:
             c.print(f"[yellow]warning:[/] {w}")
         c.print(f"wrote {out}")

@@ -192,3 +192,52 @@ def test_structure_aware_calibration_round_trips(prog, traits12):
     back = Calibration.from_json(cal.to_json())
     assert back == cal
     np.testing.assert_allclose(back.apply(pred, traits12), cal.apply(pred, traits12))
+
+
+def test_planted_compound_factors_are_recovered_and_applied(prog):
+    # observed = predicted + v_i . w for the analytes the model has factors for (a planted
+    # rank-2 interaction; v, w and the traits are arbitrary test numbers, not chemistry). 40
+    # of 60 analytes are calibrants, enough that the chosen map (fitted first) absorbs
+    # little of a term unrelated to the prediction. The loadings must be the ridge
+    # (V^T V + 0.3 I)^-1 V^T r on the map's residuals, which the test recomputes; the 20
+    # left out must then get about v . w, so their error falls well below that of the same
+    # calibration without factors.
+    import dataclasses
+
+    from retpred.calibration import FACTOR_RIDGE, SoluteTraits
+
+    rng = np.random.default_rng(11)
+    n = 60
+    v = rng.normal(0, 1.0, (n, 2))
+    v[:5] = 0.0  # structures the model has no factors for
+    w_true = np.array([0.3, -0.2])
+    pred = rng.uniform(1.0, 4.5, n)
+    s = rng.uniform(3.5, 6.0, n)
+    obs = pred + v @ w_true
+    rt = elute(obs, s, prog).rt_min
+    tr = SoluteTraits(logp=rng.uniform(0, 4, n), tpsa_a2=rng.uniform(20, 120, n),
+                      fingerprints=np.zeros((n, 8), dtype=int), factors=v)
+    cal_idx, rest = np.arange(40), np.arange(40, n)
+    cal = fit_calibration(pred[cal_idx], obs[cal_idx], rt[cal_idx],
+                          lambda lk: elute(lk, s[cal_idx], prog).rt_min,
+                          traits=tr.take(cal_idx))
+    assert len(cal.factor_loadings) == 2 and cal.n_factor_calibrants == 35
+    r = obs[cal_idx] - dataclasses.replace(cal, factor_loadings=(), nb_residuals=(),
+                                           nb_fingerprints=()).apply(pred[cal_idx],
+                                                                     tr.take(cal_idx))
+    f = v[cal_idx]
+    expect = np.linalg.solve(f.T @ f + FACTOR_RIDGE * np.eye(2), f.T @ r)
+    np.testing.assert_allclose(cal.factor_loadings, expect, rtol=1e-9)
+    np.testing.assert_allclose(cal.factor_loadings, w_true, atol=0.1)
+    plain = dataclasses.replace(cal, factor_loadings=())
+    err_f = np.abs(cal.apply(pred[rest], tr.take(rest)) - obs[rest])
+    err_p = np.abs(plain.apply(pred[rest], tr.take(rest)) - obs[rest])
+    assert np.median(err_f) < 0.5 * np.median(err_p)
+    # without factors in the traits, no correction is fitted and none applied
+    none = fit_calibration(pred[cal_idx], obs[cal_idx], rt[cal_idx],
+                           lambda lk: elute(lk, s[cal_idx], prog).rt_min,
+                           traits=dataclasses.replace(tr, factors=None).take(cal_idx))
+    assert none.factor_loadings == () and none.factor_note() is None
+    back = Calibration.from_json(cal.to_json())
+    assert back == cal
+    np.testing.assert_allclose(back.apply(pred, tr), cal.apply(pred, tr))
