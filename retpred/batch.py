@@ -539,7 +539,7 @@ def stream_predict(
         check_output_target(out, force, guard)
     chunks = iter_analytes(analytes_path, chunk_size=chunk_size)
     rho = float(prep.model.residual_sd_.get("neighbour_rho", 0.0))
-    sd_scale = float(prep.model.residual_sd_.get("pair_sd_scale", 1.0))
+    sd_scale = prep.model.pair_sd_scale(prep.calibration is not None)
 
     rt, width, low, high = [], [], [], []
     names: list[str] = []

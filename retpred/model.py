@@ -343,6 +343,14 @@ class RetentionModel:
                 out[r] = v
         return out
 
+    def pair_sd_scale(self, calibrated: bool) -> float:
+        """Scale of the neighbour-spacing sd for co-elution risk, fitted on left-out pairs
+        of the same regime (with 10 calibrants, or zero-shot); a model that recorded one
+        scale for both gives that one, a model with none 1.0."""
+        sd = self.residual_sd_
+        key = "pair_sd_scale_calibrated" if calibrated else "pair_sd_scale_zero_shot"
+        return float(sd.get(key, sd.get("pair_sd_scale", 1.0)))
+
     def known(self, solutes: Solutes) -> np.ndarray:
         """True where a usable structure is in the compound memory (it was in training)."""
         mem = self.memory_

@@ -161,17 +161,19 @@ def predict_solutes(
     )
 
 
-def add_pairs(table: pd.DataFrame, model: RetentionModel) -> pd.DataFrame:
+def add_pairs(table: pd.DataFrame, model: RetentionModel,
+              calibrated: bool = False) -> pd.DataFrame:
     """Elution order, resolution to the next peak and co-elution risk over the whole list.
 
     The time-error sd of each analyte comes from its 90 % interval (half-width / 1.645);
     neighbours' errors are correlated (``rho`` measured on held-out systems), which makes
-    their spacing more certain than the times themselves.
+    their spacing more certain than the times themselves. ``calibrated``: the times were
+    corrected with calibrants (the spacing sd then gets that regime's scale).
     """
     rt = table["rt_min"].to_numpy(dtype=float)
     sigma = table["peak_width_min"].to_numpy(dtype=float) / 4.0
-    # pair_sd_scale: fitted on left-out pairs so that the risk is calibrated (model card)
-    scale = float(model.residual_sd_.get("pair_sd_scale", 1.0))
+    # fitted on left-out pairs so that the risk is calibrated (model card)
+    scale = model.pair_sd_scale(calibrated)
     sd = time_error_sd_min(rt, table["rt_low_min"], table["rt_high_min"], scale)
     rho = float(model.residual_sd_.get("neighbour_rho", 0.0))
     pairs = neighbour_pairs(rt, sigma, table["name"].astype(str).tolist(), sd, rho=rho)
@@ -217,7 +219,7 @@ def predict_frame(
     table = predict_solutes(prep, sol, names)
     table["smiles"] = smiles
     if with_pairs:
-        table = add_pairs(table, prep.model)
+        table = add_pairs(table, prep.model, calibrated=prep.calibration is not None)
     if prep.calibration is not None:
         w = coverage_warning(prep.calibration, table["rt_min"].to_numpy(float))
         if w:

@@ -108,7 +108,7 @@ def predict_table(
     else:
         parts = list(_predict_chunks(prep, chunks, jobs))
     table = pd.concat(parts, ignore_index=True)
-    table = add_pairs(table, prep.model)
+    table = add_pairs(table, prep.model, calibrated=prep.calibration is not None)
     lead = ["line", *OUTPUT_COLUMNS]
     return table[lead + [c for c in table.columns if c not in lead]]
 

@@ -71,9 +71,12 @@ def small_cv(small_training_set):
 
 
 @pytest.mark.opendata
-def test_coelution_risk_is_calibrated_on_left_out_systems(small_training_set, small_cv):
-    """Pairs of every left-out system are scored with the single spacing-sd scale fitted on
-    the pairs of all the *other* systems (cross-fitting, one system out at a time), so no
+@pytest.mark.parametrize("calibrated", [True, False], ids=["calibrated", "zero_shot"])
+def test_coelution_risk_is_calibrated_on_left_out_systems(small_training_set, small_cv,
+                                                          calibrated):
+    """Pairs of every left-out system are scored with the spacing-sd scale fitted on the
+    pairs of all the *other* systems of the same regime (10 calibrants, or zero-shot: the
+    shipped model keeps one scale for each; cross-fitting, one system out at a time), so no
     pair is scored with a scale it helped to fit and every system is tested. The predicted
     risk must then match the observed unresolved fraction (issue 4: pairs with risk about
     0.3 are unresolved about 30 % of the time): overall within 0.025, and in every risk bin
@@ -87,7 +90,9 @@ def test_coelution_risk_is_calibrated_on_left_out_systems(small_training_set, sm
     from retpred.evaluation import calibrated_residual_quantiles
 
     q_cal, _, rho = calibrated_residual_quantiles(small_training_set, small_cv)
-    pairs = coelution_pairs(small_training_set, small_cv, tuple(q_cal), rho, calibrated=True)
+    q = q_cal if calibrated else residual_quantiles(small_training_set, small_cv)
+    pairs = coelution_pairs(small_training_set, small_cv, tuple(q), rho,
+                            calibrated=calibrated)
     systems = pairs["dataset"].unique()
     rng = np.random.default_rng(0)
     ds = pairs["dataset"].to_numpy()
@@ -175,3 +180,17 @@ def test_ph_shift_direction_with_every_ph_series_source_held_out(open_data):
     assert r["n_compound"] >= 300 and r["agree_compound"] >= 0.80, r
     assert r["n_obs"] >= 1500 and r["agree_obs"] >= 0.72, r
     assert r["n_ionising"] >= 800 and r["agree_ionising"] >= 0.90, r
+
+
+def test_pair_sd_scale_per_regime_with_fallback():
+    """The co-elution risk uses the spacing-sd scale of its regime; a model that recorded a
+    single scale (format 5 and before) gives it for both, a model without one 1.0."""
+    from retpred.column import class_hsm
+    from retpred.model import RetentionModel
+
+    m = RetentionModel(reference=class_hsm("C18"))
+    assert m.pair_sd_scale(True) == m.pair_sd_scale(False) == 1.0
+    m.residual_sd_ = {"pair_sd_scale": 0.3}
+    assert m.pair_sd_scale(True) == m.pair_sd_scale(False) == 0.3
+    m.residual_sd_ = {"pair_sd_scale_calibrated": 0.2, "pair_sd_scale_zero_shot": 0.45}
+    assert (m.pair_sd_scale(True), m.pair_sd_scale(False)) == (0.2, 0.45)
