@@ -145,6 +145,9 @@ class Calibration:
     cal_rt_range_min: tuple[float, float] = (float("nan"), float("nan"))
     warnings: tuple[str, ...] = ()
     method_summary: str = ""
+    #: ``RetentionModel.identity()`` of the model whose predictions were corrected ("" in
+    #: files written before it was recorded)
+    model_id: str = ""
 
     def apply(self, log_kw_pred: np.ndarray, traits: SoluteTraits | None = None) -> np.ndarray:
         """Corrected ``log kw`` (last axis: analytes, aligned with ``traits``).
@@ -163,6 +166,14 @@ class Calibration:
             y = y + neighbour_correction(traits.fingerprints, np.asarray(self.nb_fingerprints),
                                          np.asarray(self.nb_residuals))
         return y
+
+    def model_mismatch(self, model_id: str) -> str | None:
+        """A warning when this calibration was fitted on another model's predictions."""
+        if not self.model_id or self.model_id == model_id:
+            return None
+        return (f"this calibration was fitted with another model (model id {self.model_id}, "
+                f"this one {model_id}): its correction may not suit these predictions; refit "
+                "it with 'retpred calibrate'")
 
     def factor_note(self) -> str | None:
         """One line on the compound-factor correction, or None when it is not used."""

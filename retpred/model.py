@@ -438,6 +438,12 @@ class RetentionModel:
         return np.isfinite(d) & (d > self.domain_["threshold"])
 
     # --- metadata ----------------------------------------------------------------------
+    def identity(self) -> str:
+        """16 hex digits of the SHA-256 of :meth:`describe` (format, version, training data
+        fingerprint, training date, lab metadata): what a calibration file records of the
+        model that fitted it."""
+        return data_fingerprint(to_json(self.describe()))[:16]
+
     def describe(self) -> dict:
         return {
             "format": MODEL_FORMAT,

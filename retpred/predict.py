@@ -8,7 +8,7 @@ engine -> peak widths (Knox/Wilke-Chang plates) -> neighbour resolution and co-e
 from __future__ import annotations
 
 from collections.abc import Sequence
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 
 import numpy as np
 import pandas as pd
@@ -202,10 +202,11 @@ def calibrate(
     def rt_of(lk):
         return elute(lk, s, prep.program).rt_min
 
-    return fit_calibration(
+    cal = fit_calibration(
         log_kw, obs, rt_obs, rt_of, names=list(names), method_summary=method_summary(prep.method),
         traits=SoluteTraits.of(sol, model=prep.model),
     )
+    return replace(cal, model_id=prep.model.identity())
 
 
 def predict_frame(

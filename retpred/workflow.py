@@ -87,7 +87,11 @@ def prepared_run(
                         cal_df["name"].tolist())
         prep = dataclasses.replace(prep, calibration=cal)
     elif calibration is not None:
-        prep = dataclasses.replace(prep, calibration=load_calibration_file(calibration))
+        cal = load_calibration_file(calibration)
+        mismatch = cal.model_mismatch(model.identity())
+        if mismatch:
+            cal = dataclasses.replace(cal, warnings=(*cal.warnings, mismatch))
+        prep = dataclasses.replace(prep, calibration=cal)
     return method, model, prep
 
 

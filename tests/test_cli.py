@@ -10,6 +10,7 @@ from __future__ import annotations
 import csv
 import hashlib
 import io
+import json
 import pickle
 from pathlib import Path
 
@@ -170,3 +171,27 @@ def test_calibrate_writes_file_used_by_predict(shipped_model, demo_dir, analytes
     assert run("predict", analytes, "-m", demo_dir / "method.toml", "--calibrants", cal,
                "--out", b, "-q").exit_code == 0
     assert a.read_bytes() == b.read_bytes()
+
+
+def test_calibration_file_from_another_model_is_warned(shipped_model, demo_dir, analytes,
+                                                       tmp_path):
+    # invented standards (demo-only data: checks the plumbing, not accuracy)
+    cal = tmp_path / "cal.csv"
+    cal.write_text("name,smiles,rt_min\ncaffeine,Cn1cnc2c1c(=O)n(C)c(=O)n2C,1.9\n"
+                   "toluene,Cc1ccccc1,7.1\nnaphthalene,c1ccc2ccccc2c1,7.9\n")
+    out = tmp_path / "sys.cal"
+    assert run("calibrate", cal, "-m", demo_dir / "method.toml", "--out", out).exit_code == 0
+    d = json.loads(out.read_text())
+    assert d["model_id"] == shipped_model.identity()
+    same = run("predict", analytes, "-m", demo_dir / "method.toml", "--calibration", out,
+               "--out", tmp_path / "a.csv")
+    assert same.exit_code == 0 and "another model" not in same.output
+    d["model_id"] = "0123456789abcdef"
+    other = tmp_path / "other.cal"
+    other.write_text(json.dumps(d))
+    res = run("predict", analytes, "-m", demo_dir / "method.toml", "--calibration", other,
+              "--out", tmp_path / "b.csv")
+    assert res.exit_code == 0
+    assert "another model" in " ".join(res.output.split())
+    # the correction itself is still applied, as the file says
+    assert (tmp_path / "a.csv").read_bytes() == (tmp_path / "b.csv").read_bytes()
