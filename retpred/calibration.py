@@ -98,6 +98,11 @@ class SoluteTraits:
         return np.column_stack([self.logp, self.tpsa_a2 / 100.0])
 
 
+def ridge_solve(a: np.ndarray, r: np.ndarray, lam: float) -> np.ndarray:
+    """Ridge coefficients without intercept, ``(A^T A + lam I)^-1 A^T r``."""
+    return np.linalg.solve(a.T @ a + lam * np.eye(a.shape[1]), a.T @ r)
+
+
 def tanimoto_counts(a: np.ndarray, b: np.ndarray) -> np.ndarray:
     """(len(a), len(b)) min/max Tanimoto similarity of count fingerprints."""
     a = np.asarray(a, dtype=float)
@@ -242,8 +247,7 @@ def _fit(kind: str, x: np.ndarray, y: np.ndarray, e: np.ndarray | None = None) -
         r = y - offset - slope * (x - pivot)
         center = e.mean(axis=0)
         ec = e - center
-        coef = np.linalg.solve(ec.T @ ec + SELECTIVITY_RIDGE * np.eye(ec.shape[1]),
-                               ec.T @ (r - r.mean()))
+        coef = ridge_solve(ec, r - r.mean(), SELECTIVITY_RIDGE)
         return Calibration(kind="selectivity", offset=offset + float(r.mean()), slope=slope,
                            pivot=pivot, sel_coef=tuple(map(float, coef)),
                            sel_center=tuple(map(float, center)))
@@ -326,10 +330,10 @@ def fit_calibration(
     if ti_traits is not None and n >= MIN_LINEAR:
         resid = yi - cal.apply(xi, ti_traits)
         f = ti_traits.factors
-        if f is not None and np.any(f != 0.0):
-            w = np.linalg.solve(f.T @ f + FACTOR_RIDGE * np.eye(f.shape[1]), f.T @ resid)
+        n_fac = 0 if f is None else int(np.any(f != 0.0, axis=1).sum())
+        if n_fac:
+            w = ridge_solve(f, resid, FACTOR_RIDGE)
             loadings = tuple(map(float, w))
-            n_fac = int(np.sum(np.any(f != 0.0, axis=1)))
             resid = resid - f @ w
         nb_fp = tuple(tuple(int(v) for v in row) for row in ti_traits.fingerprints)
         nb_res = tuple(map(float, resid))

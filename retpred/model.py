@@ -50,6 +50,7 @@ from sklearn.ensemble import HistGradientBoostingRegressor
 from sklearn.linear_model import Ridge
 
 from retpred import __version__
+from retpred.calibration import ridge_solve
 from retpred.chemistry import (
     DESCRIPTOR_NAMES,
     Ionisation,
@@ -490,11 +491,6 @@ def _groups(labels: np.ndarray, n: int) -> list[np.ndarray]:
     return [order[bounds[i]:bounds[i + 1]] for i in range(n)]
 
 
-def _ridge_rows(a: np.ndarray, r: np.ndarray, lam: float) -> np.ndarray:
-    """``(A^T A + lam I)^-1 A^T r``."""
-    return np.linalg.solve(a.T @ a + lam * np.eye(a.shape[1]), a.T @ r)
-
-
 def fit_compound_factors(
     log_kw_obs: np.ndarray, log_kw_pred: np.ndarray, compound: np.ndarray,
     system: np.ndarray, rank: int = FACTOR_RANK, shrink: float = FACTOR_SHRINK,
@@ -530,9 +526,9 @@ def fit_compound_factors(
     w = np.zeros((systems.size, rank))
     for _ in range(n_iter):
         for j, rows in enumerate(s_rows):
-            w[j] = _ridge_rows(v[ci[rows]], e[rows], 1.0)
+            w[j] = ridge_solve(v[ci[rows]], e[rows], 1.0)
         for i, rows in enumerate(c_rows):
-            v[i] = _ridge_rows(w[si[rows]], e[rows], shrink)
+            v[i] = ridge_solve(w[si[rows]], e[rows], shrink)
     return comps, v
 
 
