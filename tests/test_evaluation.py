@@ -184,7 +184,8 @@ def test_ph_shift_direction_with_every_ph_series_source_held_out(open_data):
 
 def test_pair_sd_scale_per_regime_with_fallback():
     """The co-elution risk uses the spacing-sd scale of its regime; a model that recorded a
-    single scale (format 5 and before) gives it for both, a model without one 1.0."""
+    single scale (format 5 and before) gives it for both, a model without one 1.0. The scales
+    are arbitrary test numbers; the fitted ones are checked by the cross-fit test above."""
     from retpred.column import class_hsm
     from retpred.model import RetentionModel
 
