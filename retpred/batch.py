@@ -50,7 +50,13 @@ from retpred.cache import FeatureCache, Known, featurise_known, open_cache
 from retpred.errors import InputError
 from retpred.io import AnalyteChunk, atomic_output, check_output_target, iter_analytes
 from retpred.model import featurise
-from retpred.peaks import resolution, time_error_sd_min, unresolved_probability
+from retpred.peaks import (
+    any_coelution_probability,
+    recalibrate_risk,
+    resolution,
+    time_error_sd_min,
+    unresolved_probability,
+)
 from retpred.predict import OUTPUT_COLUMNS, Prepared, predict_solutes
 
 #: Columns filled by pass 2 (over the whole list).
@@ -432,18 +438,20 @@ class _Pairs:
 
 
 def whole_list_pairs(rt_min, peak_width_min, rt_low_min, rt_high_min, rho: float,
-                     with_pairs: bool = True, sd_scale: float = 1.0) -> _Pairs:
+                     with_pairs: bool = True, sd_scale: float = 1.0,
+                     risk_params: tuple[float, float, float] = (1.0, 0.0, 1.0)) -> _Pairs:
     """Order and neighbour pairs of the whole list, vectorised.
 
     The same relations as :func:`retpred.predict.add_pairs` / :func:`retpred.peaks.
     neighbour_pairs`: peak sigma = width / 4; time-error sd = interval half-width / 1.645
     (90 % interval); spacing sd = sqrt(s1^2 + s2^2 - 2 rho s1 s2); Rs = dt / (2 (s1 + s2));
-    risk = largest unresolved probability with either neighbour; a neighbour co-elutes
-    when its risk >= 0.5 or Rs < 1.5."""
+    a neighbour co-elutes when its pair risk (sd x ``sd_scale``) >= 0.5 or Rs < 1.5; the
+    risk column is :func:`retpred.peaks.any_coelution_probability` with the sd x ``scale``
+    recalibrated by ``a, b`` (``risk_params`` = (scale, a, b))."""
     rt = np.asarray(rt_min, dtype=float)
     n = rt.shape[0]
     sigma = np.asarray(peak_width_min, dtype=float) / 4.0
-    sd = time_error_sd_min(rt, rt_low_min, rt_high_min, sd_scale)
+    sd = time_error_sd_min(rt, rt_low_min, rt_high_min)
     valid = np.flatnonzero(np.isfinite(rt))
     order = valid[np.argsort(rt[valid], kind="stable")]
     elution = np.zeros(n, dtype=np.int64)
@@ -455,12 +463,13 @@ def whole_list_pairs(rt_min, peak_width_min, rt_low_min, rt_high_min, rho: float
     if with_pairs and order.size >= 2:
         i1, i2 = order[:-1], order[1:]
         rs = resolution(rt[i1], rt[i2], sigma[i1], sigma[i2])
-        pair_sd = np.sqrt(np.maximum(sd[i1] ** 2 + sd[i2] ** 2 - 2 * rho * sd[i1] * sd[i2], 0))
+        s1, s2 = sd_scale * sd[i1], sd_scale * sd[i2]
+        pair_sd = np.sqrt(np.maximum(s1 ** 2 + s2 ** 2 - 2 * rho * s1 * s2, 0))
         p = unresolved_probability(rt[i2] - rt[i1], sigma[i1], sigma[i2], pair_sd, RS_THRESHOLD)
         res_next[i1] = rs
-        # risk: each row's pairs are (previous, row) and (row, next); NaN ones are ignored
-        risk[i1] = p
-        risk[i2] = np.fmax(risk[i2], p)
+        scale, a, b = risk_params
+        risk = recalibrate_risk(
+            any_coelution_probability(rt, sigma, scale * sd, rho, RS_THRESHOLD), a, b)
         with np.errstate(invalid="ignore"):
             co = (np.isfinite(p) & (p >= 0.5)) | (np.isfinite(rs) & (rs < RS_THRESHOLD))
         right[i1[co]] = i2[co]
@@ -540,6 +549,7 @@ def stream_predict(
     chunks = iter_analytes(analytes_path, chunk_size=chunk_size)
     rho = float(prep.model.residual_sd_.get("neighbour_rho", 0.0))
     sd_scale = prep.model.pair_sd_scale(prep.calibration is not None)
+    risk_params = prep.model.analyte_risk_params(prep.calibration is not None)
 
     rt, width, low, high = [], [], [], []
     names: list[str] = []
@@ -610,7 +620,7 @@ def stream_predict(
             with_pairs = pair_limit is None or n_usable <= pair_limit
             pairs = whole_list_pairs(rt_all, np.concatenate(width), np.concatenate(low),
                                      np.concatenate(high), rho, with_pairs=with_pairs,
-                                     sd_scale=sd_scale)
+                                     sd_scale=sd_scale, risk_params=risk_params)
             del width, low, high
             final_columns = _ordered_columns(columns)
             keep = n_rows <= keep_table

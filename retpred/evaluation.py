@@ -374,21 +374,18 @@ def _plates_for(system, phi_e, mw):
                         system.organic, system.temperature_c, np.nan_to_num(mw, nan=300.0))
 
 
-def coelution_pairs(ts: TrainingSet, fp: FoldPredictions, q_phi: tuple[float, float],
-                    rho: float, calibrated: bool = True, seed: int = 2,
-                    rs_threshold: float = 1.5, q_phi_novel: tuple[float, float] | None = None
-                    ) -> pd.DataFrame:
-    """Predicted neighbour pairs on left-out systems with their predicted unresolved
-    probability and whether the measured times were unresolved (Rs < threshold with the
-    predicted peak widths). The error model is the one ``predict`` uses: 90 % interval from
-    the phi-space quantiles (``q_phi_novel`` for compounds new to the fold's training, as
-    ``predict`` does for structures not in the model's memory), sd = half-width / 1.645,
-    neighbour correlation ``rho``."""
-    from retpred.peaks import peak_sigma_min, time_error_sd_min, unresolved_probability
+def _left_out_peaks(ts: TrainingSet, fp: FoldPredictions, q_phi: tuple[float, float],
+                    calibrated: bool, seed: int, q_phi_novel: tuple[float, float] | None):
+    """For every scored left-out system: (system, predicted time, time-error sd (unscaled),
+    peak sigma, observed time) of its compounds, as ``predict`` makes them. With
+    ``calibrated``, 10 random calibrants (``seed``) correct the predictions and are left
+    out of the arrays. The interval comes from the phi-space quantiles (``q_phi_novel`` for
+    compounds new to the fold's training, as ``predict`` does for structures not in the
+    model's memory), sd = half-width / 1.645."""
+    from retpred.peaks import peak_sigma_min, time_error_sd_min
 
     rng = np.random.default_rng(seed)
     novel_all = novel_rows(ts, fp) if q_phi_novel is not None else None
-    out = []
     for sysi, m in _scored_systems(ts):
         system = ts.systems[sysi]
         prog = system.program
@@ -411,9 +408,22 @@ def coelution_pairs(ts: TrainingSet, fp: FoldPredictions, q_phi: tuple[float, fl
         mw = ts.solutes.mw[ts.solute_idx[m][keep]]
         sigma = peak_sigma_min(prog.dead_time_min, el.k_elution,
                                _plates_for(system, el.phi_elution, mw))
-        obs = ts.rt_min[m][keep]
-        rt = el.rt_min
-        sd = time_error_sd_min(rt, lo, hi)
+        yield system, el.rt_min, time_error_sd_min(el.rt_min, lo, hi), sigma, ts.rt_min[m][keep]
+
+
+def coelution_pairs(ts: TrainingSet, fp: FoldPredictions, q_phi: tuple[float, float],
+                    rho: float, calibrated: bool = True, seed: int = 2,
+                    rs_threshold: float = 1.5, q_phi_novel: tuple[float, float] | None = None
+                    ) -> pd.DataFrame:
+    """Predicted neighbour pairs on left-out systems with their predicted unresolved
+    probability and whether the measured times were unresolved (Rs < threshold with the
+    predicted peak widths). The error model is the one ``predict`` uses
+    (:func:`_left_out_peaks`), neighbour correlation ``rho``."""
+    from retpred.peaks import unresolved_probability
+
+    out = []
+    for system, rt, sd, sigma, obs in _left_out_peaks(ts, fp, q_phi, calibrated, seed,
+                                                      q_phi_novel):
         ok = np.flatnonzero(np.isfinite(rt) & np.isfinite(sigma) & np.isfinite(sd))
         order = ok[np.argsort(rt[ok], kind="stable")]
         a, b = order[:-1], order[1:]
@@ -425,6 +435,109 @@ def coelution_pairs(ts: TrainingSet, fp: FoldPredictions, q_phi: tuple[float, fl
                                  "delta_min": rt[b] - rt[a], "half_window_min": w,
                                  "pair_sd_min": pair_sd}))
     return pd.concat(out, ignore_index=True)
+
+
+#: Analytes per list in :func:`coelution_lists` (a method-development list of common
+#: practice is 10 to 30 analytes) and lists drawn per system.
+LIST_SIZE = 20
+LISTS_PER_SYSTEM = 3
+
+
+def coelution_lists(ts: TrainingSet, fp: FoldPredictions, q_phi: tuple[float, float],
+                    calibrated: bool = True, seed: int = 2,
+                    q_phi_novel: tuple[float, float] | None = None,
+                    list_size: int = LIST_SIZE, lists_per_system: int = LISTS_PER_SYSTEM
+                    ) -> pd.DataFrame:
+    """Random analyte lists of left-out systems, as a user would predict them: from every
+    scored system (after taking out the calibrants) ``lists_per_system`` draws of
+    ``list_size`` compounds with a finite prediction. One row per analyte of a list:
+    ``dataset``, ``list`` (a number), ``rt_min``, ``sd_min`` (the unscaled time-error sd),
+    ``sigma_min`` and ``obs_min``. Score with :func:`score_lists`."""
+    rng = np.random.default_rng(seed + 1)
+    out, n_lists = [], 0
+    for system, rt, sd, sigma, obs in _left_out_peaks(ts, fp, q_phi, calibrated, seed,
+                                                      q_phi_novel):
+        ok = np.flatnonzero(np.isfinite(rt) & np.isfinite(sigma) & np.isfinite(sd)
+                            & np.isfinite(obs))
+        if ok.size < list_size:
+            continue
+        for _ in range(lists_per_system):
+            pick = np.sort(rng.choice(ok, list_size, replace=False))
+            out.append(pd.DataFrame({"dataset": system.dataset, "list": n_lists,
+                                     "rt_min": rt[pick], "sd_min": sd[pick],
+                                     "sigma_min": sigma[pick], "obs_min": obs[pick]}))
+            n_lists += 1
+    return pd.concat(out, ignore_index=True)
+
+
+def score_lists(lists: pd.DataFrame, rho: float, params=(1.0, 0.0, 1.0),
+                rs_threshold: float = 1.5) -> pd.DataFrame:
+    """Per analyte of :func:`coelution_lists`: ``risk``, the predicted probability of not
+    being resolved from at least one other analyte of its list (``params`` = (sd scale,
+    a, b) as in :meth:`retpred.model.RetentionModel.analyte_risk_params`), and
+    ``unresolved``, whether its measured time is within 2 Rs (s1 + s2) of another
+    analyte's measured time (Rs < threshold with the predicted widths)."""
+    from retpred.peaks import any_coelution_probability, recalibrate_risk
+
+    scale, a, b = params
+    # all lists in one vectorised pass: each list is moved along the time axis, beyond the
+    # reach of any other (the pair probabilities across lists are then below 1e-18)
+    rt, obs = lists["rt_min"].to_numpy(), lists["obs_min"].to_numpy()
+    sigma, sd = lists["sigma_min"].to_numpy(), scale * lists["sd_min"].to_numpy()
+    lo = min(np.nanmin(rt), np.nanmin(obs))
+    span = max(np.nanmax(rt), np.nanmax(obs)) - lo
+    gap = span + 4 * rs_threshold * np.nanmax(sigma) + 20 * np.nanmax(sd) + 1.0
+    shift = lists["list"].to_numpy() * gap - lo
+    risk = any_coelution_probability(rt + shift, sigma, sd, rho, rs_threshold)
+    hit = any_coelution_probability(obs + shift, sigma, 0.0, 0.0, rs_threshold) > 0.5
+    return pd.DataFrame({"dataset": lists["dataset"].to_numpy(),
+                         "risk": recalibrate_risk(risk, a, b), "unresolved": hit})
+
+
+def fit_analyte_risk(lists: pd.DataFrame, rho: float,
+                     grid=None) -> tuple[float, float, float]:
+    """(sd scale, a, b) of the per-analyte co-elution risk: the scale that minimises the
+    log-loss of the unresolved outcome of the analytes of left-out lists, then the
+    logistic recalibration ``a + b logit p`` of that risk (a one-feature logistic
+    regression, unpenalised)."""
+    from scipy.special import logit
+    from sklearn.linear_model import LogisticRegression
+
+    grid = PAIR_SD_SCALE_GRID if grid is None else grid
+    y = None
+
+    def loss(c):
+        nonlocal y
+        sc = score_lists(lists, rho, (c, 0.0, 1.0))
+        y = sc["unresolved"].to_numpy(bool)
+        return _log_loss(sc["risk"].to_numpy(), y)
+
+    scale = float(min(grid, key=loss))
+    sc = score_lists(lists, rho, (scale, 0.0, 1.0))
+    z = logit(np.clip(sc["risk"].to_numpy(), 1e-6, 1 - 1e-6))[:, None]
+    lr = LogisticRegression(C=np.inf).fit(z, sc["unresolved"].to_numpy(bool))
+    return scale, float(lr.intercept_[0]), float(lr.coef_[0, 0])
+
+
+def analyte_risk_summary(lists: pd.DataFrame, rho: float, params) -> tuple[pd.DataFrame, dict]:
+    """:func:`score_lists` of ``lists`` with ``params`` and its figures: ``log_loss``,
+    ``log_loss_base`` (the constant observed rate), ``base_rate`` and ``auc`` (probability
+    that an unresolved analyte gets a higher risk than a resolved one, ties count half)."""
+    from scipy.stats import rankdata
+
+    sc = score_lists(lists, rho, params)
+    p, y = sc["risk"].to_numpy(), sc["unresolved"].to_numpy(bool)
+    rate = float(y.mean())
+    r = rankdata(p)
+    n1, n0 = int(y.sum()), int((~y).sum())
+    auc = float((r[y].sum() - n1 * (n1 + 1) / 2) / (n1 * n0)) if n1 and n0 else float("nan")
+    return sc, {"log_loss": _log_loss(p, y), "log_loss_base": _log_loss(np.full(y.size, rate), y),
+                "base_rate": rate, "auc": auc}
+
+
+def _log_loss(p: np.ndarray, y: np.ndarray) -> float:
+    p = np.clip(p, 1e-4, 1 - 1e-4)
+    return float(-np.mean(np.where(y, np.log(p), np.log(1 - p))))
 
 
 def risk_calibration_table(pairs: pd.DataFrame, edges=(0, .05, .1, .2, .3, .4, .5, .6, .7, .8,
@@ -540,7 +653,6 @@ def fit_pair_sd_scale(pairs: pd.DataFrame, grid=PAIR_SD_SCALE_GRID) -> float:
     y = pairs["unresolved"].to_numpy(bool)
 
     def loss(c):
-        p = np.clip(rescore_pairs(pairs, c)["risk"].to_numpy(), 1e-4, 1 - 1e-4)
-        return -np.mean(np.where(y, np.log(p), np.log(1 - p)))
+        return _log_loss(rescore_pairs(pairs, c)["risk"].to_numpy(), y)
 
     return float(min(grid, key=loss))

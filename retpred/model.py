@@ -352,6 +352,19 @@ class RetentionModel:
         key = "pair_sd_scale_calibrated" if calibrated else "pair_sd_scale_zero_shot"
         return float(sd.get(key, sd.get("pair_sd_scale", 1.0)))
 
+    def analyte_risk_params(self, calibrated: bool) -> tuple[float, float, float]:
+        """(sd scale, a, b) of the per-analyte co-elution risk of the regime: the spacing sd
+        of :func:`retpred.peaks.any_coelution_probability` is multiplied by the scale and
+        its result recalibrated by ``recalibrate_risk(p, a, b)``; all three fitted on
+        left-out analyte lists (model card). A model built without them gives its pair
+        scale and the identity map (0, 1)."""
+        key = "analyte_risk_calibrated" if calibrated else "analyte_risk_zero_shot"
+        got = self.residual_sd_.get(key)
+        if got is None:
+            return (self.pair_sd_scale(calibrated), 0.0, 1.0)
+        scale, a, b = (float(v) for v in got)
+        return (scale, a, b)
+
     def known(self, solutes: Solutes) -> np.ndarray:
         """True where a usable structure is in the compound memory (it was in training)."""
         mem = self.memory_

@@ -68,6 +68,77 @@ def unresolved_probability(
     return np.where(np.isfinite(d) & np.isfinite(w) & np.isfinite(sd), out, np.nan)
 
 
+
+#: Largest rank distance to a partner considered by :func:`any_coelution_probability`.
+MAX_PARTNER_OFFSET = 200
+
+
+def any_coelution_probability(rt_min, sigma_min, rt_sd_min, rho=0.0, rs_threshold=1.5,
+                              max_offset=MAX_PARTNER_OFFSET) -> np.ndarray:
+    """Probability that each analyte is resolved worse than ``rs_threshold`` from at least
+    one other analyte of the list, treating its pairs as independent:
+
+        P_i = 1 - prod_j (1 - p_ij),
+
+    p_ij the pair probability of :func:`unresolved_probability` with the spacing sd
+    sqrt(s_i^2 + s_j^2 - 2 rho s_i s_j) (s the time-error sds). Unlike the risk with the two
+    predicted neighbours only, a partner two or more places away counts too, as it must when
+    the time errors are as large as the spacings (the usual case before calibration).
+
+    Partners are taken by rank distance in the sorted times: the neighbours always, then up
+    to ``max_offset`` places on each side while a partner can still be within reach
+    (spacing under w + 9 sd with the largest window and sd of the list; beyond that
+    p_ij < 1e-18). Rows with a non-finite time, and rows without any finite pair
+    probability, give NaN."""
+    rt = np.asarray(rt_min, dtype=float)
+    n = rt.shape[0]
+    sigma = np.broadcast_to(np.asarray(sigma_min, dtype=float), (n,))
+    sd = np.broadcast_to(np.asarray(rt_sd_min, dtype=float), (n,))
+    out = np.full(n, np.nan)
+    order = np.flatnonzero(np.isfinite(rt))
+    order = order[np.argsort(rt[order], kind="stable")]
+    if order.size < 2:
+        return out
+    t, sg, s = rt[order], sigma[order], sd[order]
+    fin = np.isfinite(sg) & np.isfinite(s)
+    sg_max = float(np.max(sg[fin])) if fin.any() else 0.0
+    s_max = float(np.max(s[fin])) if fin.any() else 0.0
+    reach = 2.0 * rs_threshold * (sg + sg_max) + 9.0 * (s + s_max)
+    log_keep = np.zeros(order.size)
+    seen = np.zeros(order.size, dtype=bool)
+    sure = np.zeros(order.size, dtype=bool)  # a pair probability of exactly 1
+    m = order.size
+    for k in range(1, min(max_offset, m - 1) + 1):
+        gap = t[k:] - t[:m - k]
+        if k > 1 and not np.any(gap < reach[:m - k]):
+            break  # the times are sorted: no partner further away is within reach either
+        sa, sb = s[:m - k], s[k:]
+        pair_sd = np.sqrt(np.maximum(sa ** 2 + sb ** 2 - 2 * rho * sa * sb, 0))
+        p = unresolved_probability(gap, sg[:m - k], sg[k:], pair_sd, rs_threshold)
+        ok = np.isfinite(p)
+        term = np.log1p(-np.minimum(np.where(ok, p, 0.0), 1.0 - 1e-16))
+        log_keep[:m - k] += term
+        log_keep[k:] += term
+        seen[:m - k] |= ok
+        seen[k:] |= ok
+        sure[:m - k] |= p >= 1.0
+        sure[k:] |= p >= 1.0
+    out[order] = np.where(seen, np.where(sure, 1.0, 0.0 - np.expm1(log_keep)), np.nan)
+    return out
+
+
+def recalibrate_risk(p, a: float = 0.0, b: float = 1.0) -> np.ndarray:
+    """Logistic recalibration p' = 1 / (1 + exp(-(a + b logit p))) (Platt, in: Advances in
+    Large Margin Classifiers, MIT Press 1999), p clipped to [1e-6, 1 - 1e-6]; a = 0, b = 1
+    leaves p unchanged. NaN stays NaN."""
+    from scipy.special import expit, logit
+
+    p = np.asarray(p, dtype=float)
+    if a == 0.0 and b == 1.0:
+        return p.copy()
+    return expit(a + b * logit(np.clip(p, 1e-6, 1 - 1e-6)))
+
+
 #: Standard normal 95th percentile: a central 90 % interval spans +/- Z90 sd.
 Z90 = 1.6448536269514722
 

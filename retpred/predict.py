@@ -19,7 +19,13 @@ from retpred.column import column_hsm, dead_time_min, plate_number
 from retpred.gradient import STATUS_OK, ElutionProgram, elute, log_kw_from_rt, program_from_method
 from retpred.method import Method
 from retpred.model import RetentionModel, Solutes, SystemContext, featurise
-from retpred.peaks import neighbour_pairs, peak_sigma_min, time_error_sd_min
+from retpred.peaks import (
+    any_coelution_probability,
+    neighbour_pairs,
+    peak_sigma_min,
+    recalibrate_risk,
+    time_error_sd_min,
+)
 
 STATUS_OUTSIDE_DOMAIN = "outside training domain (estimate less certain)"
 
@@ -167,23 +173,29 @@ def add_pairs(table: pd.DataFrame, model: RetentionModel,
 
     The time-error sd of each analyte comes from its 90 % interval (half-width / 1.645);
     neighbours' errors are correlated (``rho`` measured on held-out systems), which makes
-    their spacing more certain than the times themselves. ``calibrated``: the times were
-    corrected with calibrants (the spacing sd then gets that regime's scale).
+    their spacing more certain than the times themselves. ``coelution_risk`` is the
+    probability that the analyte is not resolved (Rs < 1.5) from at least one other analyte
+    of the list (:func:`retpred.peaks.any_coelution_probability`, recalibrated);
+    ``coelutes_with`` names the neighbours whose pair risk is at least 0.5 or whose
+    predicted Rs is under 1.5. ``calibrated``: the times were corrected with calibrants (the
+    sd scales and the recalibration of that regime are used; all are fitted on left-out
+    systems, model card).
     """
     rt = table["rt_min"].to_numpy(dtype=float)
     sigma = table["peak_width_min"].to_numpy(dtype=float) / 4.0
-    # fitted on left-out pairs so that the risk is calibrated (model card)
-    scale = model.pair_sd_scale(calibrated)
-    sd = time_error_sd_min(rt, table["rt_low_min"], table["rt_high_min"], scale)
     rho = float(model.residual_sd_.get("neighbour_rho", 0.0))
-    pairs = neighbour_pairs(rt, sigma, table["name"].astype(str).tolist(), sd, rho=rho)
+    sd = time_error_sd_min(rt, table["rt_low_min"], table["rt_high_min"])
+    pairs = neighbour_pairs(rt, sigma, table["name"].astype(str).tolist(),
+                            model.pair_sd_scale(calibrated) * sd, rho=rho)
+    scale, a, b = model.analyte_risk_params(calibrated)
+    risk = recalibrate_risk(any_coelution_probability(rt, sigma, scale * sd, rho), a, b)
     out = table.copy()
     order = np.full(len(out), -1)
     order[pairs.order] = np.arange(1, pairs.order.size + 1)
     out["elution_order"] = pd.array(np.where(order > 0, order, 0), dtype="Int64")
     out.loc[order <= 0, "elution_order"] = pd.NA
     out["resolution_next"] = pairs.resolution_next
-    out["coelution_risk"] = pairs.coelution_risk
+    out["coelution_risk"] = risk
     out["coelutes_with"] = pairs.coelutes_with
     return out
 
