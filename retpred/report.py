@@ -79,8 +79,14 @@ def print_report(table: pd.DataFrame, title: str, notes: list[str], console: Con
         pairs = sorted({tuple(sorted((str(a), str(b))))
                         for a, bs in zip(crit["name"], crit["coelutes_with"], strict=True)
                         for b in str(bs).split(";") if b})
-        console.print("[bold red]At risk of co-eluting:[/] " + ", ".join(f"{a} / {b}"
-                                                                    for a, b in pairs))
+        if pairs:
+            console.print("[bold red]At risk of co-eluting:[/] " + ", ".join(
+                f"{a} / {b}" for a, b in pairs))
+        alone = [str(n) for n, bs in zip(crit["name"], crit["coelutes_with"], strict=True)
+                 if not str(bs) or str(bs) == "nan"]
+        if alone:
+            console.print("[bold red]At risk of co-eluting with one of several analytes "
+                          "within the time error:[/] " + ", ".join(alone))
     for n in notes:
         console.print(f"[yellow]note:[/] {n}")
     console.print(f"[dim]{CAUTION}[/]")

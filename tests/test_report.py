@@ -1,0 +1,30 @@
+"""The terminal report names every analyte at risk (risk >= 0.5): by its likely partner
+when a neighbour pair is at risk, otherwise as at risk with one of several analytes.
+Synthetic table; the risk values are arbitrary test numbers."""
+
+from __future__ import annotations
+
+import pandas as pd
+from rich.console import Console
+
+from retpred.report import print_report
+
+
+def _table():
+    return pd.DataFrame({
+        "name": ["a", "b", "c", "d"], "rt_min": [1.0, 1.05, 3.0, 6.0],
+        "rt_low_min": [0.8, 0.8, 2.0, 5.0], "rt_high_min": [1.2, 1.3, 4.0, 7.0],
+        "peak_width_min": [0.05] * 4, "resolution_next": [0.25, 19.5, 12.0, float("nan")],
+        "coelution_risk": [0.8, 0.8, 0.6, 0.1], "coelutes_with": ["b", "a", "", ""],
+        "elution_order": pd.array([1, 2, 3, 4], dtype="Int64"), "logd": [1.0] * 4,
+        "species": ["neutral"] * 4, "status": ["ok"] * 4,
+    })
+
+
+def test_report_names_pairs_and_analytes_at_risk_without_a_partner():
+    console = Console(record=True, width=200)
+    print_report(_table(), "test", [], console)
+    text = console.export_text()
+    assert "At risk of co-eluting: a / b" in text
+    line = next(x for x in text.splitlines() if "one of several analytes" in x)
+    assert line.rstrip().endswith(": c")  # c only: a and b have a partner, d is at 0.1
