@@ -21,6 +21,11 @@ arrays, bit for bit, as computing them (tests/test_cache.py).
 
 SDF input (RDKit molecules) is not cached: its key would have to be the molecule itself.
 
+Housekeeping: the cache never deletes a file of another version by itself (the directory
+may be shared by several installations). :func:`list_cache_files` lists the files and
+:func:`prune_cache` (``retpred cache DIR --prune [--max-mb N]``) deletes the files this
+version cannot use and, with a size limit, the least recently written ones.
+
 Entries are not pickles (a cache directory may be shared; nothing in it is executed).
 """
 
@@ -390,6 +395,72 @@ class FeatureCache:
 
 class _Stale(Exception):
     """The file's stored version is not this version."""
+
+
+@dataclass
+class CacheFile:
+    """One feature-cache file of a directory: its ``path``, ``size_mb`` (with its WAL and
+    shared-memory files), ``entries`` (-1 if unreadable), ``version`` ("" if unreadable),
+    ``current`` (made by this version of retpred and its libraries) and ``modified``
+    (POSIX time of the last write)."""
+
+    path: Path
+    size_mb: float
+    entries: int
+    version: str
+    current: bool
+    modified: float
+
+
+def _companions(path: Path) -> list[Path]:
+    return [Path(str(path) + suffix) for suffix in ("", "-wal", "-shm")]
+
+
+def list_cache_files(directory) -> list[CacheFile]:
+    """The ``features-*.sqlite`` files of ``directory``, oldest write first. Files are
+    opened read-only; one that cannot be read is listed with ``entries`` -1."""
+    directory = Path(directory)
+    current = cache_version()
+    out = []
+    for path in sorted(directory.glob("features-*.sqlite")):
+        parts = [f for f in _companions(path) if f.exists()]
+        size = sum(f.stat().st_size for f in parts) / 1e6
+        modified = max(f.stat().st_mtime for f in parts)
+        version, entries = "", -1
+        try:
+            db = sqlite3.connect(f"{path.resolve().as_uri()}?mode=ro", uri=True, timeout=5.0)
+            try:
+                row = db.execute("SELECT value FROM meta WHERE name = 'version'").fetchone()
+                version = row[0] if row else ""
+                entries = int(db.execute("SELECT COUNT(*) FROM features").fetchone()[0])
+            finally:
+                db.close()
+        except sqlite3.Error:
+            pass
+        out.append(CacheFile(path=path, size_mb=size, entries=entries, version=version,
+                             current=version == current, modified=modified))
+    return sorted(out, key=lambda f: f.modified)
+
+
+def prune_cache(directory, max_mb: float | None = None) -> list[CacheFile]:
+    """Delete the cache files of ``directory`` that this version would never read (other
+    versions, unreadable files), then, with ``max_mb``, the oldest remaining files until
+    the total is at most ``max_mb``. Returns the deleted files. Only ``features-*.sqlite``
+    files (and their ``-wal`` / ``-shm``) are touched."""
+    files = list_cache_files(directory)
+    gone = [f for f in files if not f.current]
+    keep = [f for f in files if f.current]
+    if max_mb is not None:
+        total = sum(f.size_mb for f in keep)
+        while keep and total > max_mb:
+            oldest = keep.pop(0)
+            total -= oldest.size_mb
+            gone.append(oldest)
+    for f in gone:
+        for part in _companions(f.path):
+            with contextlib.suppress(FileNotFoundError):
+                part.unlink()
+    return gone
 
 
 def open_cache(cache_dir=None) -> FeatureCache | None:

@@ -188,6 +188,25 @@ def scan(
     _run(body)
 
 
+@app.command("cache")
+def cache_cmd(
+    directory: Annotated[Path, typer.Argument(help="Feature cache directory.")],
+    prune: Annotated[bool, typer.Option(
+        help="Delete the files this version cannot use (other versions, unreadable).")] = False,
+    max_mb: Annotated[float | None, typer.Option(
+        min=0, help="With --prune: then delete the oldest files until at most this size.")
+    ] = None,
+) -> None:
+    """List the feature-cache files of a directory; with --prune, clean it up."""
+
+    def body():
+        from retpred import workflow
+
+        workflow.run_cache(directory, prune=prune, max_mb=max_mb)
+
+    _run(body)
+
+
 @app.command("calibrate")
 def calibrate_cmd(
     calibrants: Annotated[Path, typer.Argument(help="CSV/TSV: smiles, rt_min[, name].")],

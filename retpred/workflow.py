@@ -298,3 +298,37 @@ def run_train(data, methods, *, out, model=None, force=False, quiet=False):
     from retpred.lab import train_lab_model
 
     return train_lab_model(data, methods, out=out, base_model=model, force=force, quiet=quiet)
+
+
+# --- cache housekeeping ------------------------------------------------------------------------
+
+def run_cache(directory, *, prune: bool = False, max_mb: float | None = None,
+              console: Console | None = None):
+    """List the feature-cache files of ``directory``; with ``prune``, delete the files this
+    version cannot use and, with ``max_mb``, the oldest until the rest fit."""
+    import datetime
+
+    from retpred.cache import list_cache_files, prune_cache
+
+    directory = Path(directory)
+    if not directory.is_dir():
+        raise InputError("not a directory", path=directory)
+    if max_mb is not None and not prune:
+        raise InputError("--max-mb only acts with --prune", field="--max-mb")
+    c = console or make_console()
+    files = list_cache_files(directory)
+    t = Table(title=f"Feature cache {directory}")
+    for col in ("file", "MB", "structures", "version", "last written (UTC)"):
+        t.add_column(col, justify="right" if col in ("MB", "structures") else "left")
+    for f in files:
+        when = datetime.datetime.fromtimestamp(f.modified, datetime.UTC)
+        t.add_row(f.path.name, f"{f.size_mb:.1f}", str(f.entries) if f.entries >= 0 else "-",
+                  "this version" if f.current else ("unreadable" if not f.version else "other"),
+                  when.strftime("%Y-%m-%d %H:%M"))
+    c.print(t)
+    if prune:
+        gone = prune_cache(directory, max_mb)
+        freed = sum(f.size_mb for f in gone)
+        c.print(f"deleted {len(gone)} file(s), {freed:.1f} MB")
+        return gone
+    return []

@@ -223,3 +223,57 @@ def test_environment_variable_names_the_cache(prep, library, uncached, tmp_path,
     assert s.cache_path is None
     monkeypatch.setenv(rc.CACHE_ENV, "")
     assert rc.resolve_cache_dir(None) is None
+
+
+def test_housekeeping_lists_and_prunes_only_cache_files(tmp_path):
+    """list_cache_files reads every features-*.sqlite read-only (version, entries);
+    prune_cache deletes those this version cannot use (another version, an unreadable file
+    without the SQLite header), keeps the current one and its entries, and never touches
+    other files. ``max_mb`` 0 then empties the directory of cache files too."""
+    cache = tmp_path / "cache"
+    records = rc.encode_records(["CCO", "c1ccccc1O"], featurise(["CCO", "c1ccccc1O"]))
+    cur = FeatureCache(cache)
+    cur.store(records)
+    cur.close()
+    old = FeatureCache(cache, "retpred 0.0.1; an older version")
+    old.store(records[:1])
+    old.close()
+    (cache / "features-0123456789abcdef.sqlite").write_bytes(b"not a database at all" * 50)
+    (cache / "notes.txt").write_text("kept", encoding="utf-8")
+    files = {f.path.name: f for f in rc.list_cache_files(cache)}
+    assert len(files) == 3
+    assert files[cur.path.name].current and files[cur.path.name].entries == 2
+    assert not files[old.path.name].current and files[old.path.name].entries == 1
+    bad = files["features-0123456789abcdef.sqlite"]
+    assert not bad.current and bad.entries == -1 and bad.version == ""
+    gone = {f.path.name for f in rc.prune_cache(cache)}
+    assert gone == {old.path.name, "features-0123456789abcdef.sqlite"}
+    left = sorted(p.name for p in cache.iterdir() if not p.name.endswith(("-wal", "-shm")))
+    assert left == sorted([cur.path.name, "notes.txt"])
+    again = FeatureCache(cache)
+    known = again.lookup(["CCO", "c1ccccc1O", "CCCC"])
+    again.close()
+    assert known is not None and known.idx.tolist() == [0, 1]
+    assert {f.path.name for f in rc.prune_cache(cache, max_mb=0.0)} == {cur.path.name}
+    assert [p.name for p in cache.iterdir()] == ["notes.txt"]
+
+
+def test_cache_command_prunes_and_rejects_bad_options(tmp_path):
+    from typer.testing import CliRunner
+
+    from retpred.cli import app
+
+    cache = tmp_path / "cache"
+    other = FeatureCache(cache, "another version")
+    other.store(rc.encode_records(["CCO"], featurise(["CCO"])))
+    other.close()
+    runner = CliRunner()
+    r = runner.invoke(app, ["cache", str(cache)])
+    assert r.exit_code == 0 and other.path.exists()  # listing deletes nothing
+    r = runner.invoke(app, ["cache", str(cache), "--prune"])
+    assert r.exit_code == 0 and "deleted 1 file(s)" in r.output
+    assert not other.path.exists()
+    r = runner.invoke(app, ["cache", str(cache), "--max-mb", "5"])
+    assert r.exit_code == 2 and "--max-mb" in r.output and "Traceback" not in r.output
+    r = runner.invoke(app, ["cache", str(tmp_path / "missing")])
+    assert r.exit_code == 2 and "not a directory" in r.output
