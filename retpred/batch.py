@@ -46,10 +46,9 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from retpred.cache import FeatureCache, Known, featurise_known, open_cache
+from retpred.cache import SDF_KEY_PREFIX, FeatureCache, Known, featurise_known, open_cache
 from retpred.errors import InputError
 from retpred.io import AnalyteChunk, atomic_output, check_output_target, iter_analytes
-from retpred.model import featurise
 from retpred.peaks import (
     any_coelution_probability,
     recalibrate_risk,
@@ -123,7 +122,11 @@ class StreamSummary:
 
 
 def chunk_texts(chunk: AnalyteChunk) -> list[str]:
-    """The SMILES text of each row, '' for rows with a read error."""
+    """The feature-cache key of each row, '' for rows with a read error: the SMILES text,
+    or for SDF molecules ``sdf:`` + the SMILES written for the molecule."""
+    if chunk.mols is not None:
+        return [SDF_KEY_PREFIX + s if e is None and m is not None else ""
+                for s, e, m in zip(chunk.smiles, chunk.error, chunk.mols, strict=True)]
     return [s if e is None else "" for s, e in zip(chunk.smiles, chunk.error, strict=True)]
 
 
@@ -132,10 +135,7 @@ def predict_piece(prep: Prepared, chunk: AnalyteChunk, known: Known | None = Non
     """Rows of one chunk (pair columns are added once over the whole list) and, with
     ``record``, the feature-cache records of the structures computed here. ``known``:
     cached features of some rows (:meth:`retpred.cache.FeatureCache.lookup`)."""
-    if chunk.mols is not None:
-        sol, records = featurise(mols=chunk.mols), []
-    else:
-        sol, records = featurise_known(chunk_texts(chunk), known, record)
+    sol, records = featurise_known(chunk_texts(chunk), known, record, mols=chunk.mols)
     table = predict_solutes(prep, sol, chunk.name, read_errors=chunk.error)
     table["smiles"] = chunk.smiles
     for col, values in chunk.extra.items():
@@ -214,8 +214,8 @@ def _pieces(chunks: Iterable[AnalyteChunk], rows: int | None,
         for a in range(0, n, max(step, 1)):
             piece = chunk if step == n else _slice(chunk, a, a + step)
             known = None
-            if cache is not None and piece.mols is None:
-                known = cache.lookup(piece.smiles, skip=[e is not None for e in piece.error])
+            if cache is not None:
+                known = cache.lookup(chunk_texts(piece))
             yield piece, known
 
 

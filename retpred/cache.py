@@ -19,7 +19,10 @@ deleted and rebuilt; any other database error (locked, read-only, disk full) swi
 cache off for the run with a note. The cache never changes a result: a hit gives the same
 arrays, bit for bit, as computing them (tests/test_cache.py).
 
-SDF input (RDKit molecules) is not cached: its key would have to be the molecule itself.
+SDF input is cached under ``sdf:`` + the SMILES RDKit writes for the molecule as read
+(canonical, isomeric): the features are functions of the molecular graph (standardisation,
+2D descriptors, fingerprint, SMARTS sites), which that SMILES fixes. Its entries are kept
+apart from those of SMILES text input, whose features come from parsing the text.
 
 Housekeeping: the cache never deletes a file of another version by itself (the directory
 may be shared by several installations). :func:`list_cache_files` lists the files and
@@ -229,21 +232,34 @@ class Known:
     solutes: Solutes
 
 
+#: Prefix of the keys of SDF molecules: the SMILES RDKit writes for the molecule as read
+#: (kept apart from SMILES-text keys, whose features come from parsing the text).
+SDF_KEY_PREFIX = "sdf:"
+
+
 def featurise_known(texts: Sequence[str], known: Known | None = None,
-                    record: bool = False) -> tuple[Solutes, list[Record]]:
-    """:func:`retpred.model.featurise` of the SMILES ``texts``, the ``known`` rows taken
-    from the cache. Returns the batch and, with ``record``, the cache records of the rows
-    computed here (keyed by their text; empty texts are not recorded)."""
+                    record: bool = False, mols: Sequence | None = None
+                    ) -> tuple[Solutes, list[Record]]:
+    """:func:`retpred.model.featurise` of the SMILES ``texts`` (or of the molecules
+    ``mols``, then ``texts`` are only their keys), the ``known`` rows taken from the cache.
+    Returns the batch and, with ``record``, the cache records of the rows computed here
+    (keyed by their text; empty texts are not recorded)."""
     n = len(texts)
+
+    def compute(rows):
+        if mols is not None:
+            return featurise(mols=[mols[i] for i in rows])
+        return featurise(smiles=[texts[i] for i in rows])
+
     if known is None or known.idx.size == 0:
-        sol = featurise(smiles=list(texts))
+        sol = compute(range(n))
         return sol, (encode_records(texts, sol) if record else [])
     miss = np.setdiff1d(np.arange(n), known.idx, assume_unique=True)
     parts = [(known.idx, known.solutes)]
     records: list[Record] = []
     if miss.size:
         rows = miss.tolist()
-        fresh = featurise(smiles=[texts[i] for i in rows])
+        fresh = compute(rows)
         parts.append((miss, fresh))
         if record:
             records = encode_records([texts[i] for i in rows], fresh)

@@ -277,3 +277,45 @@ def test_cache_command_prunes_and_rejects_bad_options(tmp_path):
     assert r.exit_code == 2 and "--max-mb" in r.output and "Traceback" not in r.output
     r = runner.invoke(app, ["cache", str(tmp_path / "missing")])
     assert r.exit_code == 2 and "not a directory" in r.output
+
+
+def test_sdf_input_is_cached_and_gives_the_same_bytes(prep, open_smiles, tmp_path,
+                                                      monkeypatch):
+    """SDF molecules are cached under the SMILES written for them: cold and warm runs give
+    the uncached run's bytes, the warm run featurises nothing, and an SDF entry is never
+    served to SMILES text input (its own namespace)."""
+    from rdkit import Chem
+
+    path = tmp_path / "library.sdf"
+    writer = Chem.SDWriter(str(path))
+    for i, smi in enumerate(open_smiles[:30] + open_smiles[:5]):  # five repeats
+        mol = Chem.MolFromSmiles(smi)
+        mol.SetProp("_Name", f"m{i}")
+        writer.write(mol)
+    writer.close()
+    with path.open("a", encoding="utf-8") as fh:
+        fh.write("junk\n\n\nM  END\n$$$$\n")  # an unreadable record: reported, not cached
+    plain = tmp_path / "plain.csv"
+    stream_predict(prep, path, plain, chunk_size=8, progress=False, cache_dir=False)
+    cache = tmp_path / "cache"
+    cold, cold_bytes = _run(prep, path, tmp_path / "cold.csv", cache)
+    assert cold_bytes == plain.read_bytes()
+    assert cold.cache_misses + cold.cache_hits == 35
+    calls = []
+    real = rc.featurise
+
+    def counting(smiles=None, mols=None):
+        calls.append(len(mols or smiles or []))
+        return real(smiles=smiles, mols=mols)
+
+    monkeypatch.setattr(rc, "featurise", counting)
+    warm, warm_bytes = _run(prep, path, tmp_path / "warm.csv", cache)
+    assert warm_bytes == plain.read_bytes()
+    assert (warm.cache_hits, warm.cache_misses) == (35, 0)
+    assert sum(calls) == 1  # only the unreadable record's row
+    with sqlite3.connect(warm.cache_path) as db:
+        keys = [k for (k,) in db.execute("SELECT key FROM features")]
+    assert len(keys) == 30 and all(k.startswith(rc.SDF_KEY_PREFIX) for k in keys)
+    store = FeatureCache(cache)
+    assert store.lookup([k[len(rc.SDF_KEY_PREFIX):] for k in keys]) is None
+    store.close()
