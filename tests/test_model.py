@@ -256,3 +256,76 @@ def test_compound_factors_help_calibrated_predictions_of_shared_compounds(
     med_with = np.nanmedian(np.concatenate(err_with))
     med_without = np.nanmedian(np.concatenate(err_without))
     assert med_with < 0.95 * med_without, (med_with, med_without)
+
+
+def test_bounded_ridge_equals_sklearn_when_the_bounds_do_not_bind():
+    from sklearn.linear_model import Ridge
+
+    from retpred.model import bounded_ridge
+
+    rng = np.random.default_rng(3)
+    x = rng.normal(size=(400, 5))
+    y = x @ np.array([1.0, 0.5, -0.3, 0.8, 0.0]) + 0.1 * rng.normal(size=400) + 2.0
+    w = rng.uniform(0.5, 2.0, 400)
+    coef, b0 = bounded_ridge(x, y, 3.0, np.eye(5)[:2], np.array([5.0, 5.0]), w)
+    ref = Ridge(alpha=3.0).fit(x, y, sample_weight=w)  # reference library, same objective
+    np.testing.assert_allclose(coef, ref.coef_, atol=1e-10)
+    assert b0 == pytest.approx(ref.intercept_, abs=1e-10)
+
+
+def test_bounded_ridge_is_the_constrained_optimum():
+    from scipy.optimize import minimize
+
+    from retpred.model import bounded_ridge
+
+    rng = np.random.default_rng(4)
+    x = rng.normal(size=(300, 4))
+    y = x @ np.array([1.0, 0.6, -0.4, 0.3]) + 0.1 * rng.normal(size=300)
+    a_ub = np.array([[1.0, 0.0, 0.0, 0.0], [0.0, 1.0, 0.0, 1.0]])
+    b_ub = np.array([0.5, 0.7])  # both bind: the free fit wants about 1.0 and 0.9
+    coef, b0 = bounded_ridge(x, y, 2.0, a_ub, b_ub)
+    assert np.all(a_ub @ coef <= b_ub + 1e-9)
+
+    def objective(p):  # scikit-learn's Ridge objective, intercept unpenalised
+        return ((y - p[0] - x @ p[1:]) ** 2).sum() + 2.0 * (p[1:] ** 2).sum()
+
+    ref = minimize(objective, np.zeros(5), method="SLSQP", options={"ftol": 1e-12},
+                   constraints=[{"type": "ineq", "fun": lambda p: b_ub - a_ub @ p[1:]}])
+    np.testing.assert_allclose(coef, ref.x[1:], atol=1e-5)
+    # SLSQP stops at a tolerance (it may sit a hair outside the bounds): equal to 1e-8
+    assert objective(np.r_[b0, coef]) == pytest.approx(ref.fun, rel=1e-8)
+
+
+def _single_site_log_k(f0, drop, c):
+    # species-weighted retention log10(f0 + (1 - f0) 10^-d) (retention-physics.md section 4)
+    # plus a charge term linear in the ionised fraction
+    return np.log10(f0 + (1 - f0) * 10.0 ** -drop) + c * (1 - f0)
+
+
+def test_charge_term_bound_is_where_the_single_site_curve_stops_being_monotone():
+    from retpred.model import charge_term_bound
+
+    f0 = np.linspace(0.0, 1.0, 2001)
+    for drop in (0.5, 1.0):
+        c = charge_term_bound(drop)
+        assert c <= 0.5 * drop + 1e-12
+        assert np.all(np.diff(_single_site_log_k(f0, drop, c)) >= -1e-12)
+    # for the base drop 1.0 the monotone limit binds: a little more and the curve turns back
+    c = charge_term_bound(1.0)
+    assert c < 0.5
+    assert np.any(np.diff(_single_site_log_k(f0, 1.0, c + 0.02)) < 0)
+
+
+def test_learned_charge_terms_keep_a_visible_monotone_ion_drop(small_model):
+    # per modifier, the plain charge terms soften the fixed drop by at most half, and the
+    # single-site curve stays monotone (an ion keeps most of its drop: retention-physics.md
+    # section 4)
+    from retpred.model import COLUMN_TERM_NAMES
+
+    c = dict(zip(COLUMN_TERM_NAMES, small_model.ridge_.coef_, strict=False))
+    f0 = np.linspace(0.0, 1.0, 2001)
+    for charge, drop in (("cation", small_model.ion_drop_base),
+                         ("anion", small_model.ion_drop_acid)):
+        for coef in (c[charge], c[charge] + c[f"methanol*{charge}"]):
+            assert coef <= 0.5 * drop + 1e-9
+            assert np.all(np.diff(_single_site_log_k(f0, drop, coef)) >= -1e-9)
