@@ -72,7 +72,7 @@ S_RULE_COEF = 0.25
 #: and per pair of opposite charges on one molecule (zwitterion), see :func:`ion_term`.
 #: Chosen by the left-out-source cross-validation of the open data (error and pH-series sign
 #: agreement together; DEVELOPERS.md "Ion drops"), not fitted per build. The smooth charge
-#: terms of the ridge are linear in the charge and bounded (``MAX_DROP_SOFTENING``), so
+#: terms of the ridge are linear in the charge and bounded (:func:`charge_term_bound`), so
 #: retention still falls monotonically, and visibly, as a site ionises.
 DEFAULT_ION_DROP_ACID = 0.5
 DEFAULT_ION_DROP_BASE = 1.0
