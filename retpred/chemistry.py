@@ -154,8 +154,47 @@ class _Group:
     source: str
 
 
+_FRAGMENT_REF = re.compile(r"\{([A-Za-z_][A-Za-z0-9_]*)\}")
+
+
+def _read_fragments(lines: list[tuple[int, str]], where: str) -> dict[str, str]:
+    """Named SMARTS fragments of the group table: lines ``@name<TAB>primitives``.
+
+    A fragment is the text of an atom's primitives (no brackets), e.g.
+    ``NX3;+0;!$(N-[!C,!X4])``; a smarts cell uses it as ``[{name};H1:1]``. Fragments do not
+    nest. Raises InputError naming the line for a malformed or repeated definition.
+    """
+    out: dict[str, str] = {}
+    for line_no, ln in lines:
+        name, _, text = ln[1:].partition("\t")
+        name, text = name.strip(), text.strip()
+        if not re.fullmatch(r"[A-Za-z_][A-Za-z0-9_]*", name) or not text:
+            raise InputError("a fragment line is '@name<TAB>SMARTS primitives'", path=where,
+                             line=line_no, field="fragment")
+        if name in out:
+            raise InputError(f"fragment '{name}' defined twice", path=where, line=line_no,
+                             field="fragment")
+        if "{" in text or Chem.MolFromSmarts(f"[{text}]") is None:
+            raise InputError(f"fragment '{name}' is not a valid SMARTS atom (fragments do "
+                             "not nest)", path=where, line=line_no, field="fragment")
+        out[name] = text
+    return out
+
+
+def _expand_fragments(smarts: str, fragments: dict[str, str], where: str,
+                      line_no: int) -> str:
+    def sub(m: re.Match) -> str:
+        if m.group(1) not in fragments:
+            raise InputError(f"unknown fragment {{{m.group(1)}}}", path=where, line=line_no,
+                             field="smarts")
+        return fragments[m.group(1)]
+
+    return _FRAGMENT_REF.sub(sub, smarts)
+
+
 def load_group_table(path=None) -> list[_Group]:
-    """Read the ionisable-group table (TSV: group, smarts, pka, kind, source; '#' comments).
+    """Read the ionisable-group table (TSV: group, smarts, pka, kind, source; '#' comments;
+    ``@name<TAB>primitives`` lines define SMARTS fragments used as ``{name}``).
 
     Raises InputError naming file, line and field for a bad row.
     """
@@ -166,7 +205,9 @@ def load_group_table(path=None) -> list[_Group]:
         with open(path, encoding="utf-8") as fh:
             text = fh.read()
         where = str(path)
-    lines = [(i + 1, ln) for i, ln in enumerate(text.splitlines()) if ln and ln[0] != "#"]
+    numbered = [(i + 1, ln) for i, ln in enumerate(text.splitlines()) if ln and ln[0] != "#"]
+    fragments = _read_fragments([x for x in numbered if x[1][0] == "@"], where)
+    lines = [x for x in numbered if x[1][0] != "@"]
     if not lines:
         raise InputError("no header line", path=where)
     header_no, header = lines[0]
@@ -177,7 +218,8 @@ def load_group_table(path=None) -> list[_Group]:
         raise InputError(f"missing columns: {', '.join(missing)}", path=where, line=header_no)
     groups = []
     for (line_no, _), row in zip(lines[1:], reader, strict=True):
-        query = Chem.MolFromSmarts(row["smarts"] or "")
+        query = Chem.MolFromSmarts(
+            _expand_fragments(row["smarts"] or "", fragments, where, line_no))
         if query is None:
             raise InputError("invalid SMARTS", path=where, line=line_no, field="smarts")
         kind = _KIND_CODES.get((row["kind"] or "").strip())

@@ -203,6 +203,43 @@ def test_bad_group_table_reports_line_and_field(tmp_path):
         load_group_table(bad)
 
 
+def test_group_table_fragments_expand_inside_atoms(tmp_path):
+    table = tmp_path / "groups.tsv"
+    table.write_text(
+        "@amine\tNX3;+0;!$(N-C=O)\n"
+        "group\tsmarts\tpka\tkind\tsource\n"
+        "primary amine\t[{amine};H2:1]\t10.6\tbase\tx\n"
+        # RDKit's range query D{2-3} is SMARTS, not a fragment, and is left alone
+        "chain amine\t[{amine};H1:1][C;D{2-3}]\t10.6\tbase\tx\n")
+    primary, chain = load_group_table(table)
+    # the same query as the text written out by hand (parsed by RDKit's SMARTS parser)
+    by_hand = Chem.MolFromSmarts("[NX3;+0;!$(N-C=O);H2:1]")
+    assert Chem.MolToSmarts(primary.query) == Chem.MolToSmarts(by_hand)
+    assert Chem.MolFromSmiles("CN").HasSubstructMatch(primary.query)
+    assert not Chem.MolFromSmiles("NC(C)=O").HasSubstructMatch(primary.query)  # amide N
+    assert Chem.MolFromSmiles("CCNC").HasSubstructMatch(chain.query)
+
+
+@pytest.mark.parametrize(
+    ("text", "line", "field", "match"),
+    [
+        ("group\tsmarts\tpka\tkind\tsource\nx\t[{amine}:1]\t9\tbase\tx\n", 2, "smarts",
+         "unknown fragment"),
+        ("@amine\tNX3\n@amine\tNX3;H2\ngroup\tsmarts\tpka\tkind\tsource\n", 2, "fragment",
+         "defined twice"),
+        ("@amine\tNX3;{other}\ngroup\tsmarts\tpka\tkind\tsource\n", 1, "fragment", "nest"),
+        ("@amine\tN(\ngroup\tsmarts\tpka\tkind\tsource\n", 1, "fragment", "valid SMARTS"),
+        ("@9x\tN\ngroup\tsmarts\tpka\tkind\tsource\n", 1, "fragment", "@name"),
+    ],
+)
+def test_bad_group_table_fragment_reports_line(tmp_path, text, line, field, match):
+    bad = tmp_path / "groups.tsv"
+    bad.write_text(text)
+    with pytest.raises(InputError, match=match) as err:
+        load_group_table(bad)
+    assert (err.value.line, err.value.field) == (line, field)
+
+
 def test_nitro_n_oxide_and_amides_are_not_ionisable():
     mols = parents(["O=[N+]([O-])c1ccccc1", "C[N+](C)(C)[O-]", "[O-][n+]1ccccc1",
                     "CC(=O)Nc1ccccc1", "CNC(C)=O", "CN(C)C=O", "NC(=O)c1ccccc1"])
