@@ -43,9 +43,10 @@ import json
 from collections.abc import Sequence
 from dataclasses import dataclass, field
 from datetime import UTC, datetime
-from functools import cached_property
+from functools import cached_property, lru_cache
 
 import numpy as np
+from rdkit import Chem
 from sklearn.ensemble import HistGradientBoostingRegressor
 from sklearn.linear_model import Ridge
 
@@ -64,7 +65,7 @@ from retpred.method import HsmParameters
 from retpred.structures import StandardisedBatch, standardise_mols, standardise_smiles
 
 #: Model-file format version; a file of another format is refused.
-MODEL_FORMAT = 6
+MODEL_FORMAT = 7
 N_BITS = 256
 #: Snyder and Dolan's rule of thumb S = 0.25 M^0.5 (retention-physics.md section 2).
 S_RULE_COEF = 0.25
@@ -245,10 +246,23 @@ def bounded_ridge(x: np.ndarray, y: np.ndarray, alpha: float, a_ub: np.ndarray,
 
 # Names of the HSM-style interaction features, in order (documentation and model card).
 COLUMN_TERM_NAMES = (
-    "dH", "dH*logp", "dS*", "dS*x bulk", "dA", "dA*hba", "dB", "dB*hbd", "dC*cation",
+    "dH*(logp-logp_EB)", "dS*x(bulk-bulk_EB)", "dA*hba", "dB*hbd", "dC*cation",
     "d(1/T)", "d(1/T)*logp", "methanol", "methanol*logp", "methanol*tpsa", "methanol*hbd",
     "cation", "anion", "cation*anion", "methanol*cation", "methanol*anion",
 )
+
+#: The HSM's reference solute: log(k/kEB) = 0 for ethylbenzene on every column, so each
+#: solute coefficient (eta', sigma', beta', alpha', kappa') vanishes for it and a column's
+#: retentivity for ethylbenzene is its kEB alone.
+REFERENCE_SOLUTE_SMILES = "CCc1ccccc1"
+
+
+@lru_cache(maxsize=1)
+def reference_solute_terms() -> tuple[float, float]:
+    """``(log P, bulk)`` of ethylbenzene, the HSM reference solute (bulk = heavy atoms / 10;
+    its H-bond acceptor and donor counts and charge are zero)."""
+    d = compute_descriptors([Chem.MolFromSmiles(REFERENCE_SOLUTE_SMILES)])[0]
+    return float(d[_d("logp")]), float(d[_d("heavy_atoms")]) / 10.0
 
 
 def column_features(
@@ -257,7 +271,12 @@ def column_features(
     """Interaction matrix z for rows ``idx`` of ``solutes`` on their systems.
 
     ``ctx_arrays`` holds per-row arrays H, S, A, B, C (at the row's pH), inv_t (1000/K)
-    and meoh (0/1).
+    and meoh (0/1). The column terms are the HSM's (Snyder, Dolan and Carr 2004) with each
+    solute coefficient linear in a descriptor and zero for ethylbenzene:
+    ``eta' = w1 (log P - log P_EB)``, ``sigma' = w2 (bulk - bulk_EB)``, ``beta' = w3 hba``,
+    ``alpha' = w4 hbd``, ``kappa' = w5 cation``. So ethylbenzene's retention differs between
+    columns by ``log10(kEB / kEB_ref)`` only, as the HSM defines, and a column's lower kEB
+    cannot be undone by a learned column offset.
     """
     d = solutes.descriptors[idx]
     logp = d[:, _d("logp")]
@@ -279,8 +298,9 @@ def column_features(
     # and ion drops that depend on the modifier. No term in the ionised fraction itself or
     # in charge x log P: with positive coefficients they outweighed the log term at partial
     # ionisation and made lipophilic acids gain retention as they ionised.
+    logp_eb, bulk_eb = reference_solute_terms()
     return np.column_stack(
-        [dh, dh * logp, ds, ds * bulk, da, da * hba, db, db * hbd, dc * cation,
+        [dh * (logp - logp_eb), ds * (bulk - bulk_eb), da * hba, db * hbd, dc * cation,
          dt, dt * logp, me, me * logp, me * tpsa, me * hbd, cation, anion,
          cation * anion, me * cation, me * anion]
     )

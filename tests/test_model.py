@@ -75,6 +75,28 @@ def test_c18_retains_nonpolar_longer_than_c8(small_model, demo_method):
     assert np.all(rt18 > rt8)
 
 
+@pytest.mark.parametrize("organic", ["acetonitrile", "methanol"])
+def test_ethylbenzene_moves_between_columns_by_its_kEB_ratio(small_model, organic):
+    # The HSM's definition (Snyder, Dolan and Carr, J. Chromatogr. A 1060 (2004) 77;
+    # retention-physics.md section 5): log(k/kEB) = eta' H - sigma' S* + ... is zero for
+    # ethylbenzene on every column, so its log k differs between two columns by
+    # log10(kEB / kEB_ref) alone, whatever the learned solute coefficients are.
+    from retpred.column import class_hsm
+    from retpred.model import SystemContext, featurise
+
+    eb = featurise(["CCc1ccccc1"])
+    ref = class_hsm("C18")
+
+    def log_kw(hsm):
+        ctx = SystemContext(organic=organic, ph=3.0, temperature_c=35.0, hsm=hsm)
+        return small_model.retention_parameters(eb, ctx)[0][0]
+
+    for phase in ("C8", "phenyl", "polar-embedded", "CN"):
+        hsm = class_hsm(phase)
+        assert log_kw(hsm) - log_kw(ref) == pytest.approx(np.log10(hsm.kEB / ref.kEB),
+                                                          abs=1e-9)
+
+
 def _at_ph(method, ph):
     mp = dataclasses.replace(method.mobile_phase, ph=ph)
     col = dataclasses.replace(method.column, ph_min=1.0, ph_max=12.0)
