@@ -189,6 +189,14 @@ def ion_term(ion: Ionisation, drop_acid: float, drop_base: float,
 #: benzoic acid lost only a third of its k on ionisation.
 MAX_DROP_SOFTENING = 0.5
 
+#: log P range over which the learned van 't Hoff slope must not be negative. Retention in
+#: reversed phase falls as the column warms (transfer to the stationary phase is
+#: exothermic; roughly 1-2 % of k per degree, common practice, from memory). The open data
+#: cannot show it: each system has one temperature, so a free fit takes up differences
+#: between labs, and it learned -0.28 + 0.14 log P, i.e. polar analytes retained longer at
+#: higher temperature.
+VANT_HOFF_LOGP_RANGE = (-4.0, 10.0)
+
 
 def charge_term_bound(drop: float) -> float:
     """Largest coefficient ``c`` of a charge term linear in the ionised fraction.
@@ -476,9 +484,11 @@ class RetentionModel:
         )
 
     # --- training --------------------------------------------------------------------
-    def _charge_bounds(self, n_features: int) -> tuple[np.ndarray, np.ndarray]:
+    def _coef_bounds(self, n_features: int) -> tuple[np.ndarray, np.ndarray]:
         """``A coef <= b``: per modifier, the plain charge terms (``cation``, ``anion`` and
-        their methanol terms) stay within :func:`charge_term_bound` of their drop."""
+        their methanol terms) stay within :func:`charge_term_bound` of their drop; and the
+        van 't Hoff slope ``d log k / d(1000/T) = c_T + c_TP log P`` is not negative for
+        any log P in :data:`VANT_HOFF_LOGP_RANGE` (retention never grows with temperature)."""
         col = {name: i for i, name in enumerate(COLUMN_TERM_NAMES)}
         rows, bounds = [], []
         for charge, drop in (("cation", self.ion_drop_base), ("anion", self.ion_drop_acid)):
@@ -487,6 +497,11 @@ class RetentionModel:
                 a[[col[t] for t in terms]] = 1.0
                 rows.append(a)
                 bounds.append(charge_term_bound(drop))
+        for logp in VANT_HOFF_LOGP_RANGE:
+            a = np.zeros(n_features)
+            a[col["d(1/T)"]], a[col["d(1/T)*logp"]] = -1.0, -logp
+            rows.append(a)
+            bounds.append(0.0)
         return np.array(rows), np.array(bounds)
 
     def fit(
@@ -506,7 +521,7 @@ class RetentionModel:
         x = solute_matrix(solutes, idx, arr["meoh"])
         lin = np.column_stack([z, solutes.descriptors[idx]])
         ridge = Ridge(alpha=self.ridge_alpha).fit(lin, y, sample_weight=sample_weight)
-        a_ub, b_ub = self._charge_bounds(lin.shape[1])
+        a_ub, b_ub = self._coef_bounds(lin.shape[1])
         if np.any(a_ub @ ridge.coef_ > b_ub):
             ridge.coef_, ridge.intercept_ = bounded_ridge(
                 lin, y, self.ridge_alpha, a_ub, b_ub, sample_weight)

@@ -11,6 +11,8 @@ Each dataset (chromatographic system) becomes a :class:`OpenSystem` with its own
 - unknown flow: 0.3 mL/min for columns of 2.1 mm i.d. or less, else 1.0 mL/min
   (common practice); with a known dead time only the dwell *time* depends on it;
 - unknown dwell volume (never recorded): the method module's typical UHPLC/HPLC value;
+- unknown column temperature, or one outside 5-100 C (one system gives -1, a placeholder,
+  not a column at -1 C): the method module's default, 30 C;
 - unknown pH: from the additives (formic/acetic/TFA -> acidic, ammonium hydroxide ->
   basic, ammonium salts alone -> near neutral), else formic-acid conditions;
 - rows eluting at or before the dead time carry no retention information and are dropped;
@@ -102,6 +104,18 @@ def _num(x) -> float | None:
     return v if math.isfinite(v) else None
 
 
+#: Column temperatures a reversed-phase system can have, C; outside: not reported.
+PLAUSIBLE_TEMPERATURE_C = (5.0, 100.0)
+
+
+def column_temperature_c(x) -> float:
+    """The column temperature of a ``systems.tsv`` cell: the default (30 C) where it is blank
+    or outside :data:`PLAUSIBLE_TEMPERATURE_C` (a placeholder such as -1)."""
+    t = _num(x)
+    lo, hi = PLAUSIBLE_TEMPERATURE_C
+    return t if t is not None and lo <= t <= hi else DEFAULT_TEMPERATURE_C
+
+
 def ph_from_additives(additives: str | None) -> float:
     """A pH guess from the additive list when none was reported (common practice values:
     0.1 % formic acid ~2.7, 0.1 % acetic acid ~3.2, 0.1 % TFA ~2.0, ammonium hydroxide ~10,
@@ -179,7 +193,7 @@ def load_systems(root: Path) -> list[OpenSystem]:
                 phase=phase,
                 organic=organic,
                 ph=float(ph),
-                temperature_c=_num(row.temperature_c) or DEFAULT_TEMPERATURE_C,
+                temperature_c=column_temperature_c(row.temperature_c),
                 hsm=hsm,
                 program=prog,
                 length_mm=length or 100.0,

@@ -14,6 +14,7 @@ import dataclasses
 
 import numpy as np
 import pytest
+from tests_support import warming_shift
 
 from retpred.method import load_method
 from retpred.predict import predict_frame, prepare
@@ -95,6 +96,14 @@ def test_ethylbenzene_moves_between_columns_by_its_kEB_ratio(small_model, organi
         hsm = class_hsm(phase)
         assert log_kw(hsm) - log_kw(ref) == pytest.approx(np.log10(hsm.kEB / ref.kEB),
                                                           abs=1e-9)
+
+
+@pytest.mark.parametrize("organic", ["acetonitrile", "methanol"])
+def test_a_warmer_column_never_retains_longer(small_model, organic):
+    # common practice: reversed-phase retention falls as the column warms (exothermic
+    # transfer, a negative van 't Hoff enthalpy; about 1-2 % of k per degree, from memory),
+    # for polar analytes too
+    assert np.all(warming_shift(small_model, organic) <= 1e-12)
 
 
 def _at_ph(method, ph):

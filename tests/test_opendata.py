@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import numpy as np
 import pytest
 from rdkit import Chem
 from rdkit.Chem.rdMolDescriptors import CalcMolFormula
@@ -47,3 +48,23 @@ def test_open_data_holds_no_sp3_triazine_after_reading(open_data):
     mols = [Chem.MolFromSmiles(s) for s in smiles]
     assert not any(m is not None and m.HasSubstructMatch(_SP3_TRIAZINE) for m in mols)
     assert "CCNc1nc(Cl)nc(NC(C)C)n1" in set(smiles)
+
+
+@pytest.mark.parametrize(
+    ("cell", "expected"),
+    [
+        ("40.0", 40.0), (25, 25.0), ("60", 60.0),
+        # blank, and the placeholder -1 of one open-data system: not a column at -1 C; the
+        # default is the method module's 30 C (common practice)
+        ("", 30.0), (None, 30.0), ("nan", 30.0), ("-1.0", 30.0), (0.0, 30.0), (250.0, 30.0),
+    ],
+)
+def test_column_temperature_placeholders_read_as_not_reported(cell, expected):
+    from retpred.opendata import column_temperature_c
+
+    assert column_temperature_c(cell) == expected
+
+
+def test_open_data_temperatures_are_plausible(open_systems):
+    temps = np.array([s.temperature_c for s in open_systems])
+    assert temps.min() >= 5.0 and temps.max() <= 100.0

@@ -9,6 +9,7 @@ import shutil
 import numpy as np
 import pytest
 import skops.io as sio
+from tests_support import warming_shift
 
 from retpred.errors import ModelFileError
 from retpred.modelfile import (
@@ -97,6 +98,13 @@ def test_shipped_model_keeps_c18_most_retentive_for_nonpolar_analytes(shipped_mo
             sol, SystemContext(organic=organic, ph=3.0, temperature_c=30.0,
                                hsm=class_hsm(p)))[0] for p in ("C18", "C8", "CN")}
         assert np.all(lk["C18"] > lk["C8"]) and np.all(lk["C8"] > lk["CN"]), lk
+
+
+def test_shipped_model_never_retains_longer_on_a_warmer_column(shipped_model):
+    # common practice (see tests/test_model.py): the shipped model's free temperature terms
+    # once made analytes below log P 2 elute later at 50 C than at 30 C
+    for organic in ("acetonitrile", "methanol"):
+        assert np.all(warming_shift(shipped_model, organic) <= 1e-12)
 
 
 @pytest.mark.opendata
