@@ -154,7 +154,8 @@ class _Group:
     source: str
 
 
-_FRAGMENT_REF = re.compile(r"\{([A-Za-z_][A-Za-z0-9_]*)\}")
+_FRAGMENT_NAME = r"[A-Za-z_][A-Za-z0-9_]*"
+_FRAGMENT_REF = re.compile(r"\{(" + _FRAGMENT_NAME + r")\}")
 
 
 def _read_fragments(lines: list[tuple[int, str]], where: str) -> dict[str, str]:
@@ -168,7 +169,7 @@ def _read_fragments(lines: list[tuple[int, str]], where: str) -> dict[str, str]:
     for line_no, ln in lines:
         name, _, text = ln[1:].partition("\t")
         name, text = name.strip(), text.strip()
-        if not re.fullmatch(r"[A-Za-z_][A-Za-z0-9_]*", name) or not text:
+        if not re.fullmatch(_FRAGMENT_NAME, name) or not text:
             raise InputError("a fragment line is '@name<TAB>SMARTS primitives'", path=where,
                              line=line_no, field="fragment")
         if name in out:
