@@ -43,6 +43,8 @@ from retpred.method import (
     DEFAULT_DWELL_UHPLC_ML,
     DEFAULT_PH,
     DEFAULT_TEMPERATURE_C,
+    TEMPERATURE_PHYSICAL_C,
+    TEMPERATURE_USUAL_C,
     HsmParameters,
 )
 
@@ -104,8 +106,9 @@ def _num(x) -> float | None:
     return v if math.isfinite(v) else None
 
 
-#: Column temperatures a reversed-phase system can have, C; outside: not reported.
-PLAUSIBLE_TEMPERATURE_C = (5.0, 100.0)
+#: Column temperatures read as reported, C: from the lowest usual column temperature to the
+#: physical limit of a method file (``retpred.method``); outside: not reported.
+PLAUSIBLE_TEMPERATURE_C = (TEMPERATURE_USUAL_C[0], TEMPERATURE_PHYSICAL_C[1])
 
 
 def column_temperature_c(x) -> float:
