@@ -9,7 +9,7 @@ import shutil
 import numpy as np
 import pytest
 import skops.io as sio
-from tests_support import warming_shift
+from tests_support import class_log_kw, warming_shift
 
 from retpred.errors import ModelFileError
 from retpred.modelfile import (
@@ -88,15 +88,12 @@ def test_shipped_model_keeps_c18_most_retentive_for_nonpolar_analytes(shipped_mo
     # analyte longer than C8, and the short-chain and cyano phases (lower H and kEB in the
     # public HSM table) less still. Checked on the shipped model, whose learned column
     # terms once made C8 and CN more retentive than C18.
-    from retpred.column import class_hsm
-    from retpred.model import SystemContext, featurise
+    from retpred.model import featurise
 
     sol = featurise(["Cc1ccccc1", "CCc1ccccc1", "c1ccc2ccccc2c1", "CCCCc1ccccc1",
                      "Clc1ccc(Cl)cc1"])
     for organic in ("acetonitrile", "methanol"):
-        lk = {p: shipped_model.retention_parameters(
-            sol, SystemContext(organic=organic, ph=3.0, temperature_c=30.0,
-                               hsm=class_hsm(p)))[0] for p in ("C18", "C8", "CN")}
+        lk = {p: class_log_kw(shipped_model, sol, p, organic) for p in ("C18", "C8", "CN")}
         assert np.all(lk["C18"] > lk["C8"]) and np.all(lk["C8"] > lk["CN"]), lk
 
 

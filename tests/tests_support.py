@@ -31,12 +31,20 @@ WARMING_SMILES = [
 ]
 
 
+def class_log_kw(model, solutes, phase, organic, temperature_c=30.0, ph=3.0):
+    """Predicted ``log kw`` of ``solutes`` on the class-median column of ``phase``."""
+    from retpred.column import class_hsm
+    from retpred.model import SystemContext
+
+    ctx = SystemContext(organic=organic, ph=ph, temperature_c=temperature_c,
+                        hsm=class_hsm(phase))
+    return model.retention_parameters(solutes, ctx)[0]
+
+
 def warming_shift(model, organic):
     """``log kw`` at 50 C minus at 30 C of :data:`WARMING_SMILES` on the C18 class."""
-    from retpred.column import class_hsm
-    from retpred.model import SystemContext, featurise
+    from retpred.model import featurise
 
     sol = featurise(WARMING_SMILES)
-    lk = [model.retention_parameters(sol, SystemContext(
-        organic=organic, ph=3.0, temperature_c=t, hsm=class_hsm("C18")))[0] for t in (30, 50)]
-    return lk[1] - lk[0]
+    return (class_log_kw(model, sol, "C18", organic, temperature_c=50.0)
+            - class_log_kw(model, sol, "C18", organic, temperature_c=30.0))
