@@ -139,7 +139,8 @@ def run_predict(
     if prep.calibration is not None:
         cal = prep.calibration
         notes.append(
-            f"calibrated with {cal.n_calibrants} reference compound(s), correction '{cal.kind}'"
+            f"calibrated with {cal.n_calibrants} reference compound(s), "
+            f"correction: {cal.describe()}"
             + (f", leave-one-out median error {cal.loo_median_abs_error_min:.2f} min"
                if np.isfinite(cal.loo_median_abs_error_min) else "")
         )
@@ -282,10 +283,13 @@ def run_calibrate(calibrants, method_path, *, out, model=None, force=False, quie
         fh.write(cal.to_json())
     if not quiet:
         c = make_console()
-        c.print(f"calibration '{cal.kind}' from {cal.n_calibrants} compound(s) on "
+        c.print(f"calibration ({cal.describe()}) from {cal.n_calibrants} compound(s) on "
                 f"{method_summary(method)}")
         for kind, e in cal.loo_errors_min.items():
             c.print(f"  leave-one-out median |error| with '{kind}': {e:.3f} min")
+        if np.isfinite(cal.loo_median_abs_error_min):
+            c.print(f"  leave-one-out median |error| of the correction used: "
+                    f"{cal.loo_median_abs_error_min:.3f} min")
         if cal.factor_note():
             c.print(f"  {cal.factor_note()}")
         for w in cal.warnings:

@@ -258,10 +258,10 @@ those). It is one constant per compound, so it does not change a predicted pH or
 shift.
 
 Calibration (the 10-calibrant figures): shift, linear, selectivity (log P and TPSA terms)
-and monotone maps of the predicted log kw, chosen by leave-one-out error in time, then
-the compound-factor correction (system loadings fitted on the calibrants the open data
-know; each fold's factors from its own training systems) and a fingerprint-similarity
-neighbour correction (`retpred/calibration.py`).
+and monotone maps of the predicted log kw, each followed by the compound-factor correction
+(system loadings fitted on the calibrants the open data know; each fold's factors from its
+own training systems) and a fingerprint-similarity neighbour correction, then averaged
+with weights 1 / (leave-one-out error in time)^2 (`retpred/calibration.py`).
 
 Ratio of calibrated MedAE to the descriptor baseline: {f('ratio_cal_vs_gbm_cal', 2)};
 to the log P baseline: {f('ratio_cal_vs_logp_cal', 2)}. Per-system figures:

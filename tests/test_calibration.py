@@ -11,7 +11,13 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from retpred.calibration import Calibration, coverage_warning, fit_calibration
+from retpred.calibration import (
+    Calibration,
+    CalibrationMap,
+    blend_weights,
+    coverage_warning,
+    fit_calibration,
+)
 from retpred.errors import InputError
 from retpred.gradient import build_program, elute
 
@@ -47,12 +53,34 @@ def test_planted_shift_recovered(prog):
     assert cal.loo_median_abs_error_min < 1e-6
 
 
-def test_planted_slope_chooses_linear(prog):
+def test_planted_slope_weights_linear_and_is_recovered(prog):
     pred, obs, rt, s = _case(prog, 8, shift=0.2, slope=1.3)
     cal = fit_calibration(pred, obs, rt, lambda v: elute(v, s, prog).rt_min)
-    assert cal.kind == "linear"
-    assert cal.slope == pytest.approx(1.3, abs=1e-9)
+    assert cal.kind == "blend" and {m.kind for m in cal.maps} == {"shift", "linear"}
+    linear = cal.map_of("linear")
+    assert linear.slope == pytest.approx(1.3, abs=1e-9)
     assert cal.loo_errors_min["linear"] < cal.loo_errors_min["shift"]
+    # the exact linear map (LOO error ~0, floored) outweighs the shift by far
+    assert linear.weight > 0.99
+    np.testing.assert_allclose(cal.apply(pred), obs, atol=0.01 * np.ptp(obs))
+
+
+def test_blend_weights_are_inverse_variance():
+    # w_k proportional to 1 / LOO_k^2 (inverse-variance weighting of estimators of one
+    # quantity; e.g. Hartung, Knapp and Sinha, Statistical Meta-Analysis, 2008, ch. 4, from
+    # memory): errors 0.1 and 0.2 min -> weights 4:1
+    np.testing.assert_allclose(blend_weights([0.1, 0.2]), [0.8, 0.2], rtol=1e-12)
+    w = blend_weights([0.0, 0.0, 0.3])  # exact fits share the weight, none is infinite
+    assert w[0] == pytest.approx(w[1]) and 0 < w[2] < 1e-3 and w.sum() == pytest.approx(1)
+
+
+def test_blend_is_the_weighted_mean_of_its_maps():
+    a = CalibrationMap(kind="shift", offset=0.3, weight=0.25)
+    b = CalibrationMap(kind="linear", offset=1.0, slope=1.5, pivot=2.0, weight=0.75)
+    cal = Calibration(maps=(a, b))
+    x = np.array([1.0, 2.0, 3.5])
+    np.testing.assert_allclose(cal.apply(x), 0.25 * (x + 0.3) + 0.75 * (1.0 + 1.5 * (x - 2)))
+    assert cal.describe() == "blend of linear 0.75, shift 0.25"
 
 
 def test_outlier_is_warned_and_does_not_drag_the_fit(prog):
@@ -78,26 +106,42 @@ def test_monotone_candidate_only_with_ten(prog):
 
 def test_monotone_correction_keeps_order():
     """A monotone map of log kw must never swap two analytes' order (monotonicity)."""
-    cal = Calibration(kind="monotone", offset=0.1, slope=1.1, pivot=2.0,
-                      knots_x=(1.0, 2.0, 3.0), knots_y=(0.0, 0.05, 0.08))
+    cal = Calibration(maps=(CalibrationMap(kind="monotone", offset=0.1, slope=1.1, pivot=2.0,
+                                           knots_x=(1.0, 2.0, 3.0),
+                                           knots_y=(0.0, 0.05, 0.08)),))
     x = np.linspace(0, 5, 500)
     assert np.all(np.diff(cal.apply(x)) > 0)
 
 
 def test_json_round_trip_and_bad_file():
-    cal = Calibration(kind="linear", offset=0.3, slope=1.2, pivot=2.5, n_calibrants=5,
-                      loo_median_abs_error_min=0.12, loo_errors_min={"shift": 0.2},
-                      cal_rt_range_min=(1.0, 9.0), warnings=("x",))
+    import json
+
+    cal = Calibration(maps=(CalibrationMap(kind="linear", offset=0.3, slope=1.2, pivot=2.5,
+                                           weight=0.6),
+                            CalibrationMap(kind="shift", offset=0.2, weight=0.4)),
+                      n_calibrants=5, loo_median_abs_error_min=0.12,
+                      loo_errors_min={"shift": 0.2}, cal_rt_range_min=(1.0, 9.0),
+                      warnings=("x",))
     back = Calibration.from_json(cal.to_json())
     assert back == cal
     with pytest.raises(InputError, match="calibration"):
         Calibration.from_json("{not json", path="sys.cal")
-    with pytest.raises(InputError):
-        Calibration.from_json('{"format": 1, "kind": "cubic", "offset": 0}', path="sys.cal")
+    d = json.loads(cal.to_json())
+    d["maps"][0]["kind"] = "cubic"
+    with pytest.raises(InputError, match="cubic"):
+        Calibration.from_json(json.dumps(d), path="sys.cal")
+    d["maps"][0]["kind"], d["maps"][0]["weight"] = "linear", 0.9  # weights sum to 1.3
+    with pytest.raises(InputError, match="inconsistent"):
+        Calibration.from_json(json.dumps(d), path="sys.cal")
+    # a file of the single-map format 1 is refused with the way out
+    with pytest.raises(InputError, match="refit it") as exc:
+        Calibration.from_json('{"format": 1, "kind": "shift", "offset": 0}', path="sys.cal")
+    assert exc.value.field == "format"
 
 
 def test_coverage_warning():
-    cal = Calibration(kind="shift", offset=0.0, cal_rt_range_min=(2.0, 6.0))
+    cal = Calibration(maps=(CalibrationMap(kind="shift", offset=0.0),),
+                      cal_rt_range_min=(2.0, 6.0))
     assert coverage_warning(cal, np.array([2.5, 3.0, 5.9])) is None
     w = coverage_warning(cal, np.array([0.9, 3.0, 11.0]))
     assert w is not None and "2 analyte" in w
@@ -151,9 +195,10 @@ def test_planted_selectivity_is_recovered_and_chosen(prog, traits12):
     obs = pred + 0.25 * (e[:, 0] - e[:, 0].mean()) - 0.4 * (e[:, 1] - e[:, 1].mean())
     rt = elute(obs, s, prog).rt_min
     cal = fit_calibration(pred, obs, rt, lambda v: elute(v, s, prog).rt_min, traits=traits12)
-    assert cal.kind == "selectivity"
-    assert cal.sel_coef[0] == pytest.approx(0.25, rel=0.25)
-    assert cal.sel_coef[1] < 0
+    sel = cal.map_of("selectivity")
+    assert sel.weight == max(m.weight for m in cal.maps)
+    assert sel.sel_coef[0] == pytest.approx(0.25, rel=0.25)
+    assert sel.sel_coef[1] < 0
     # without the structures the selectivity kind is not offered and cannot be applied
     plain = fit_calibration(pred, obs, rt, lambda v: elute(v, s, prog).rt_min)
     assert "selectivity" not in plain.loo_errors_min
@@ -188,7 +233,7 @@ def test_structure_aware_calibration_round_trips(prog, traits12):
     obs = pred + 0.2 + rng.normal(0, 0.05, 12)
     rt = elute(obs, s, prog).rt_min
     cal = fit_calibration(pred, obs, rt, lambda v: elute(v, s, prog).rt_min, traits=traits12)
-    assert len(cal.nb_residuals) == 12
+    assert all(len(m.nb_residuals) == 12 for m in cal.maps) and len(cal.nb_fingerprints) == 12
     back = Calibration.from_json(cal.to_json())
     assert back == cal
     np.testing.assert_allclose(back.apply(pred, traits12), cal.apply(pred, traits12))
@@ -221,15 +266,15 @@ def test_planted_compound_factors_are_recovered_and_applied(prog):
     cal = fit_calibration(pred[cal_idx], obs[cal_idx], rt[cal_idx],
                           lambda lk: elute(lk, s[cal_idx], prog).rt_min,
                           traits=tr.take(cal_idx))
-    assert len(cal.factor_loadings) == 2 and cal.n_factor_calibrants == 35
-    r = obs[cal_idx] - dataclasses.replace(cal, factor_loadings=(), nb_residuals=(),
-                                           nb_fingerprints=()).apply(pred[cal_idx],
-                                                                     tr.take(cal_idx))
+    assert cal.n_factor_calibrants == 35
     f = v[cal_idx]
-    expect = np.linalg.solve(f.T @ f + FACTOR_RIDGE * np.eye(2), f.T @ r)
-    np.testing.assert_allclose(cal.factor_loadings, expect, rtol=1e-9)
-    np.testing.assert_allclose(cal.factor_loadings, w_true, atol=0.1)
-    plain = dataclasses.replace(cal, factor_loadings=())
+    for m in cal.maps:  # each map's loadings are fitted on its own residuals
+        bare = dataclasses.replace(m, factor_loadings=(), nb_residuals=())
+        r = obs[cal_idx] - bare.apply(pred[cal_idx], tr.take(cal_idx))
+        expect = np.linalg.solve(f.T @ f + FACTOR_RIDGE * np.eye(2), f.T @ r)
+        np.testing.assert_allclose(m.factor_loadings, expect, rtol=1e-9)
+        np.testing.assert_allclose(m.factor_loadings, w_true, atol=0.1)
+    plain = cal.without_factors()
     err_f = np.abs(cal.apply(pred[rest], tr.take(rest)) - obs[rest])
     err_p = np.abs(plain.apply(pred[rest], tr.take(rest)) - obs[rest])
     assert np.median(err_f) < 0.5 * np.median(err_p)
@@ -237,7 +282,7 @@ def test_planted_compound_factors_are_recovered_and_applied(prog):
     none = fit_calibration(pred[cal_idx], obs[cal_idx], rt[cal_idx],
                            lambda lk: elute(lk, s[cal_idx], prog).rt_min,
                            traits=dataclasses.replace(tr, factors=None).take(cal_idx))
-    assert none.factor_loadings == () and none.factor_note() is None
+    assert all(m.factor_loadings == () for m in none.maps) and none.factor_note() is None
     back = Calibration.from_json(cal.to_json())
     assert back == cal
     np.testing.assert_allclose(back.apply(pred, tr), cal.apply(pred, tr))

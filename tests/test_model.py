@@ -273,7 +273,7 @@ def test_compound_factors_help_calibrated_predictions_of_shared_compounds(
             cal = fit_calibration(pred[pick], ts.log_kw[rows][pick], ts.rt_min[rows][pick],
                                   lambda lk, s_p=s[pick], g=prog: elute(lk, s_p, g).rt_min,
                                   traits=tr.take(pick))
-            plain = dataclasses.replace(cal, factor_loadings=())
+            plain = cal.without_factors()
             lk_f = cal.apply(pred[rest], tr.take(rest))
             lk_p = plain.apply(pred[rest], tr.take(rest))
             np.testing.assert_array_equal(lk_f[~has[rest]], lk_p[~has[rest]])
