@@ -68,3 +68,16 @@ def test_column_temperature_placeholders_read_as_not_reported(cell, expected):
 def test_open_data_temperatures_are_plausible(open_systems):
     temps = np.array([s.temperature_c for s in open_systems])
     assert temps.min() >= 5.0 and temps.max() <= 100.0
+
+
+@pytest.mark.opendata
+def test_smallest_open_data_structure_sets_the_small_molecule_flag(open_data):
+    # retpred.structures flags structures smaller than anything the model learned from;
+    # the limit must match the open data: none below it, some at it or just above
+    from retpred.structures import MIN_HEAVY_ATOMS
+
+    smiles = load_compounds(open_data)["smiles"].unique()
+    heavy = np.array([m.GetNumHeavyAtoms() for s in smiles
+                      if (m := Chem.MolFromSmiles(s)) is not None])
+    assert heavy.min() >= MIN_HEAVY_ATOMS
+    assert np.sum(heavy <= MIN_HEAVY_ATOMS + 1) >= 10

@@ -19,13 +19,13 @@ def canon(smiles: str) -> str:
 
 
 def test_bad_rows_get_reasons_and_the_rest_still_works():
-    batch = standardise_smiles(["", "C1CC", "xyz", "[Na+].[Cl-]", "CCO", None, "O"])
+    batch = standardise_smiles(["", "C1CC", "xyz", "[Na+].[Cl-]", "CCCO", None, "O"])
     assert batch.status[:5] == ["empty", "unparseable SMILES", "unparseable SMILES", "no carbon",
                                 "ok"]
     assert batch.status[5] == "empty"
     assert batch.status[6] == "no carbon"  # water
     assert batch.usable.tolist() == [False, False, False, False, True, False, False]
-    assert batch.smiles[4] == canon("OCC")
+    assert batch.smiles[4] == canon("OCCC")
     assert batch.mols[0] is None and batch.smiles[0] == ""
     assert len(batch) == 7
 
@@ -92,12 +92,15 @@ def test_domain_flags_keep_rows_usable():
     peptide = "N[C@@H](C)C(=O)N[C@@H](C)C(=O)N[C@@H](C)C(=O)N[C@@H](C)C(=O)N[C@@H](C)C(=O)O"
     dipeptide = "N[C@@H](Cc1ccccc1)C(=O)N[C@@H](C)C(=O)O"
     big = "C" * 180  # 180 heavy atoms, above the 150 limit of issue 2
-    batch = standardise_smiles([peptide, dipeptide, big, "CCO"])
+    batch = standardise_smiles([peptide, dipeptide, big, "CCO", "CC(=O)O", "C[N+](C)(C)C"])
     assert batch.usable.all()
     assert batch.status[0] == "outside domain: peptide"
     assert batch.status[1] == "ok"
     assert batch.status[2] == "outside domain: 180 heavy atoms"
-    assert batch.status[3] == "ok"
+    # ethanol (3 heavy atoms) is smaller than anything the open data hold; acetic acid (4)
+    # and the tetramethylammonium ion (5) are not
+    assert batch.status[3] == "outside domain: only 3 heavy atoms"
+    assert batch.status[4] == "ok" and batch.status[5] == "ok"
 
 
 def test_standardise_mols_and_sdf(tmp_path):
