@@ -7,10 +7,17 @@ its leave-one-out error in *time* (the quantity the user measures):
 
 - ``shift``: ``log kw = pred + a`` (one parameter: the system is uniformly more or less
   retentive, e.g. a column batch, an eluent or a dwell difference);
-- ``linear``: ``log kw = a + b (pred - pivot)`` with a robust (repeated-median) slope
-  bounded to 0.5-2; needs 3 or more calibrants;
-- ``monotone``: the linear map plus an isotonic (monotone) correction of its residuals,
-  interpolated linearly between calibrants; needs 10 or more;
+- ``linear``: ``log kw = a + b (pred - pivot)``, slope bounded to 0.5-2, fitted on the
+  calibrants' errors in *time*: each ``log kw`` residual is weighted by the calibrant's
+  ``J = d t_R / d log kw`` (first-order propagation through the engine; an early peak
+  moves little for a given ``log kw`` error, a peak in the gradient much more) and the fit is
+  a Huber M-estimate (robust to a mislabelled standard); needs 3 or more calibrants.
+  Measured on the open data (283 left-out systems, 10 random calibrants, seeds 0-3, in
+  the blend below, with the monotone kind built on it): median error 2.94 -> 2.81 % of the
+  run against the unweighted repeated-median line (Siegel 1982), which the selectivity
+  kind still uses;
+- ``monotone``: the linear map plus an isotonic (monotone) correction of its residuals
+  (weighted by ``J^2``), interpolated linearly between calibrants; needs 10 or more;
 - ``selectivity``: the linear map plus ``c_P (log P - mean) + c_T (TPSA/100 - mean)``, a
   ridge-regularised (lambda = 1) correction of the system's hydrophobic and polar
   selectivity relative to the model (the two leading solute terms of the
@@ -73,6 +80,12 @@ NEIGHBOUR_KAPPA = 0.5
 #: floor of a candidate's leave-one-out error in the blend weights (min; ~ a data
 #: system's time resolution) so that exact fits do not get infinite weight
 LOO_FLOOR_MIN = 0.005
+#: Huber's tuning constant (95 % efficiency at the normal distribution; Huber 1964)
+HUBER_C = 1.345
+#: time weights are clipped to this factor of their median either way
+TIME_WEIGHT_RANGE = 5.0
+#: log kw step of the central difference that gives the time weights
+JACOBIAN_STEP = 0.01
 KINDS = ("shift", "linear", "monotone", "selectivity")
 
 
@@ -312,19 +325,90 @@ class Calibration:
         return cal
 
 
-def _fit(kind: str, x: np.ndarray, y: np.ndarray, e: np.ndarray | None = None
-         ) -> CalibrationMap:
-    """One candidate map on calibrants ``x`` (predicted) -> ``y`` (observed log kw); ``e``:
-    their selectivity terms (log P, TPSA/100), used by the selectivity kind."""
-    if kind == "shift":
-        return CalibrationMap(kind="shift", offset=float(np.median(y - x)))
+def time_jacobian(rt_of: Callable[[np.ndarray], np.ndarray], log_kw: np.ndarray,
+                  h: float = JACOBIAN_STEP) -> np.ndarray:
+    """``d t_R / d log kw`` of each compound (min per log unit) by central difference
+    through the gradient engine ``rt_of``."""
+    lk = np.asarray(log_kw, dtype=float)
+    return (rt_of(lk + h) - rt_of(lk - h)) / (2.0 * h)
+
+
+def time_weights(jac_min: np.ndarray) -> np.ndarray:
+    """Calibrants' weights ``J = d t_R / d log kw`` (min per log unit), cleaned: a ``log kw``
+    error ``e`` moves a peak by about ``J e`` (first-order error propagation), so residuals
+    ``J e`` are errors in time. Non-finite or non-positive ``J`` take the median, and ``J`` is
+    clipped to ``TIME_WEIGHT_RANGE`` times the median either way."""
+    j = np.asarray(jac_min, dtype=float)
+    good = np.isfinite(j) & (j > 0)
+    if not good.any():
+        return np.ones_like(j)
+    med = float(np.median(j[good]))
+    j = np.where(good, j, med)
+    return np.clip(j, med / TIME_WEIGHT_RANGE, med * TIME_WEIGHT_RANGE)
+
+
+def huber_line(x: np.ndarray, r: np.ndarray, w: np.ndarray, scale: float,
+               c: float = HUBER_C, max_iter: int = 100) -> tuple[float, float]:
+    """``(a, b)`` minimising ``sum_i rho(w_i (r_i - a - b x_i) / scale)`` with Huber's
+    ``rho`` (quadratic up to ``c``, linear beyond; Huber 1964), by iteratively reweighted
+    least squares with the scale held fixed."""
+    x = np.asarray(x, dtype=float)
+    r = np.asarray(r, dtype=float)
+    w = np.asarray(w, dtype=float)
+    a_mat = np.column_stack([np.ones_like(x), x])
+    u = np.ones_like(x)
+    coef = np.zeros(2)
+    for _ in range(max_iter):
+        ww = np.sqrt(w * w * u)
+        new = np.linalg.lstsq(a_mat * ww[:, None], r * ww, rcond=None)[0]
+        z = np.abs(w * (r - a_mat @ new)) / (c * max(scale, 1e-12))
+        u = np.where(z <= 1.0, 1.0, 1.0 / np.maximum(z, 1e-300))
+        done = np.allclose(new, coef, rtol=0.0, atol=1e-12)
+        coef = new
+        if done:
+            break
+    return float(coef[0]), float(coef[1])
+
+
+def _line(x: np.ndarray, y: np.ndarray, w: np.ndarray | None) -> tuple[float, float, float]:
+    """``(offset, slope, pivot)`` of the linear map ``y = offset + slope (x - pivot)``.
+
+    Without weights: the repeated-median slope (Siegel 1982) and the median offset. With
+    time weights ``w`` (three or more calibrants): a Huber fit of the time residuals
+    ``w (y - x - a - b (x - pivot))``, its scale fixed at 1.4826 x the median absolute
+    deviation of the repeated-median line's time residuals; the slope ``1 + b`` is bounded
+    to ``SLOPE_BOUNDS`` (a bounded slope takes the weighted median offset)."""
     pivot = float(np.median(x))
     res = siegelslopes(y, x)
     slope = float(np.clip(res.slope, *SLOPE_BOUNDS))
-    offset = float(np.median(y - slope * (x - pivot)))
-    if kind == "linear":
-        return CalibrationMap(kind="linear", offset=offset, slope=slope, pivot=pivot)
+    if w is None or x.size < MIN_LINEAR:
+        return float(np.median(y - slope * (x - pivot))), slope, pivot
+    t_res = w * (y - res.intercept - res.slope * x)
+    scale = 1.4826 * float(np.median(np.abs(t_res - np.median(t_res))))
+    a, b = huber_line(x - pivot, y - x, w, scale)
+    slope = 1.0 + b
+    if SLOPE_BOUNDS[0] <= slope <= SLOPE_BOUNDS[1]:
+        return pivot + a, slope, pivot
+    slope = float(np.clip(slope, *SLOPE_BOUNDS))
+    return weighted_median(y - slope * (x - pivot), w), slope, pivot
+
+
+def weighted_median(v: np.ndarray, w: np.ndarray) -> float:
+    """The value where the cumulative weight of the sorted ``v`` first reaches half."""
+    order = np.argsort(v)
+    cw = np.cumsum(np.asarray(w, dtype=float)[order])
+    return float(np.asarray(v, dtype=float)[order][np.searchsorted(cw, 0.5 * cw[-1])])
+
+
+def _fit(kind: str, x: np.ndarray, y: np.ndarray, e: np.ndarray | None = None,
+         w: np.ndarray | None = None) -> CalibrationMap:
+    """One candidate map on calibrants ``x`` (predicted) -> ``y`` (observed log kw); ``e``:
+    their selectivity terms (log P, TPSA/100), used by the selectivity kind; ``w``: their
+    time weights (:func:`time_weights`), used by the linear and monotone kinds."""
+    if kind == "shift":
+        return CalibrationMap(kind="shift", offset=float(np.median(y - x)))
     if kind == "selectivity":
+        offset, slope, pivot = _line(x, y, None)
         r = y - offset - slope * (x - pivot)
         center = e.mean(axis=0)
         ec = e - center
@@ -332,8 +416,12 @@ def _fit(kind: str, x: np.ndarray, y: np.ndarray, e: np.ndarray | None = None
         return CalibrationMap(kind="selectivity", offset=offset + float(r.mean()), slope=slope,
                               pivot=pivot, sel_coef=tuple(map(float, coef)),
                               sel_center=tuple(map(float, center)))
+    offset, slope, pivot = _line(x, y, w)
+    if kind == "linear":
+        return CalibrationMap(kind="linear", offset=offset, slope=slope, pivot=pivot)
     order = np.argsort(x)
-    iso = IsotonicRegression(increasing=True).fit(x[order], (y[order]))
+    iso = IsotonicRegression(increasing=True).fit(
+        x[order], y[order], sample_weight=None if w is None else w[order] ** 2)
     # monotone map = isotonic fit of y; store its difference to the linear map at knots
     kx = x[order]
     ky = iso.predict(kx) - (offset + slope * (kx - pivot))
@@ -411,6 +499,7 @@ def fit_calibration(
         full[ok] = lk_ok
         return rt_of(full)[ok]
 
+    wi = time_weights(time_jacobian(rt_at, yi))
     loo: dict[str, float] = {}
     loo_lk = np.empty((len(kinds), n))
     if n >= 2:
@@ -418,14 +507,14 @@ def fit_calibration(
             for i in range(n):
                 keep = np.arange(n) != i
                 e_keep = ei[keep] if ei is not None else None
-                fit_i = _fit(kind, xi[keep], yi[keep], e_keep)
+                fit_i = _fit(kind, xi[keep], yi[keep], e_keep, wi[keep])
                 tr_i = ti_traits.take(np.array([i])) if ti_traits is not None else None
                 loo_lk[k, i] = fit_i.apply(xi[i : i + 1], tr_i)[0]
             loo[kind] = float(np.nanmedian(np.abs(rt_at(loo_lk[k]) - ti)))
         weights = blend_weights(np.array([loo[k] for k in kinds]))
     else:
         weights = np.ones(1)
-    maps = tuple(replace(_with_corrections(_fit(kind, xi, yi, ei), xi, yi, ti_traits),
+    maps = tuple(replace(_with_corrections(_fit(kind, xi, yi, ei, wi), xi, yi, ti_traits),
                          weight=float(w)) for kind, w in zip(kinds, weights, strict=True))
     n_fac = 0
     if any(m.factor_loadings for m in maps):
