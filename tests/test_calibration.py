@@ -358,3 +358,26 @@ def test_time_weighted_line_follows_the_peaks_that_move(prog):
         err_p.append(np.median(np.abs(elute(plain.apply(x_new), s_new, prog).rt_min - truth)))
     # measured: 0.64 of the unweighted error with this seed (0.64-0.94 over seeds 0-5)
     assert np.median(err_w) < 0.8 * np.median(err_p), (np.median(err_w), np.median(err_p))
+
+
+def test_weighted_median_and_bounded_slope(prog):
+    from retpred.calibration import SLOPE_BOUNDS, time_jacobian, time_weights, weighted_median
+
+    v = np.array([3.0, 1.0, 7.0, 5.0, 2.0])
+    assert weighted_median(v, np.ones(5)) == np.median(v)  # equal weights: the median
+    # a weight over half of the total decides: 7.0 holds 6 of 10
+    assert weighted_median(v, np.array([1.0, 1.0, 6.0, 1.0, 1.0])) == 7.0
+    # a planted slope of 2.6 is beyond the bounds (0.5-2): the slope stops at the bound and
+    # the offset is the one that leaves the time-weighted median residual at zero
+    pred, obs, rt, s = _case(prog, 8, shift=0.1, slope=2.6)
+    ok = np.isfinite(rt)  # the most retained may not elute within the program
+    pred, obs, rt, s = pred[ok], obs[ok], rt[ok], s[ok]
+    assert ok.sum() >= 5
+    cal = fit_calibration(pred, obs, rt, lambda v: elute(v, s, prog).rt_min)
+    lin = cal.map_of("linear")
+    assert lin.slope == SLOPE_BOUNDS[1]
+    w = time_weights(time_jacobian(lambda v: elute(v, s, prog).rt_min, obs))
+    resid = obs - lin.apply(pred)
+    assert lin.offset == weighted_median(obs - 2.0 * (pred - lin.pivot), w)
+    # half the weight on either side of the zero residual
+    assert w[resid < -1e-12].sum() <= 0.5 * w.sum() and w[resid > 1e-12].sum() <= 0.5 * w.sum()
