@@ -381,3 +381,23 @@ def test_weighted_median_and_bounded_slope(prog):
     assert lin.offset == weighted_median(obs - 2.0 * (pred - lin.pivot), w)
     # half the weight on either side of the zero residual
     assert w[resid < -1e-12].sum() <= 0.5 * w.sum() and w[resid > 1e-12].sum() <= 0.5 * w.sum()
+
+
+def test_blend_applies_to_a_grid_of_conditions_row_by_row(prog, traits12):
+    # scans correct a (conditions x analytes) grid in one call: each row must get exactly
+    # what the analytes get one condition at a time (structure terms along the last axis)
+    import dataclasses
+
+    rng = np.random.default_rng(9)
+    pred = rng.uniform(1.0, 4.5, 12)
+    s = rng.uniform(3.5, 6.0, 12)
+    tr = dataclasses.replace(traits12, factors=rng.normal(0, 1, (12, 3)))
+    obs = pred + 0.2 + 0.15 * (tr.logp - tr.logp.mean()) + rng.normal(0, 0.05, 12)
+    rt = elute(obs, s, prog).rt_min
+    cal = fit_calibration(pred, obs, rt, lambda v: elute(v, s, prog).rt_min, traits=tr)
+    assert {m.kind for m in cal.maps} >= {"selectivity", "monotone"}
+    assert cal.nb_fingerprints and any(m.factor_loadings for m in cal.maps)
+    grid = pred[None, :] + np.array([[-0.5], [0.0], [0.7]])
+    whole = cal.apply(grid, tr)
+    for r in range(grid.shape[0]):
+        np.testing.assert_allclose(whole[r], cal.apply(grid[r], tr), rtol=0, atol=1e-12)
