@@ -69,16 +69,20 @@ AnalytesArg = Annotated[Path, typer.Argument(help="CSV/TSV with a smiles column,
 QuietOpt = Annotated[bool, typer.Option("--quiet", "-q", help="No table or progress output.")]
 
 
+CalibrantsOpt = Annotated[
+    Path | None, typer.Option(help="Measured reference compounds: smiles, rt_min[, name].")
+]
+CalibrationOpt = Annotated[
+    Path | None, typer.Option(help="A calibration file written by 'retpred calibrate'.")
+]
+
+
 @app.command()
 def predict(
     analytes: AnalytesArg,
     method: MethodOpt,
-    calibrants: Annotated[
-        Path | None, typer.Option(help="Measured reference compounds: smiles, rt_min[, name].")
-    ] = None,
-    calibration: Annotated[
-        Path | None, typer.Option(help="A calibration file written by 'retpred calibrate'.")
-    ] = None,
+    calibrants: CalibrantsOpt = None,
+    calibration: CalibrationOpt = None,
     model: ModelOpt = None,
     out: Annotated[Path | None, typer.Option(help="Write the results as CSV here.")] = None,
     plot: Annotated[Path | None, typer.Option(help="Write a simulated chromatogram PNG.")] = None,
@@ -169,6 +173,8 @@ def scan(
         str | None, typer.Option(help="With --ph: also scan these phase classes ('all' or list)")
     ] = None,
     rs_target: Annotated[float, typer.Option(min=0.1, help="Target smallest resolution.")] = 1.5,
+    calibrants: CalibrantsOpt = None,
+    calibration: CalibrationOpt = None,
     model: ModelOpt = None,
     out: Annotated[Path | None, typer.Option(help="Long CSV: each analyte at each point.")] = None,
     summary_out: Annotated[Path | None, typer.Option(help="CSV: one row per scan point.")] = None,
@@ -182,8 +188,9 @@ def scan(
         from retpred.scan import run_scan
 
         run_scan(analytes, method, ph=ph, gradient_time=gradient_time, phases=phases,
-                 rs_target=rs_target, model=model, out=out, summary_out=summary_out, plot=plot,
-                 force=force, quiet=quiet)
+                 rs_target=rs_target, calibrants=calibrants, calibration=calibration,
+                 model=model, out=out, summary_out=summary_out, plot=plot, force=force,
+                 quiet=quiet)
 
     _run(body)
 

@@ -912,33 +912,36 @@ def parse_range(text: str, field_name: str, lo_limit: float = -math.inf,
 
 
 def run_scan(analytes, method_path, *, ph: str | None = None, gradient_time: str | None = None,
-             phases: str | None = None, rs_target: float = DEFAULT_RS_TARGET, model=None,
-             out=None, summary_out=None, plot=None, force: bool = False,
-             quiet: bool = False):
+             phases: str | None = None, rs_target: float = DEFAULT_RS_TARGET,
+             calibrants=None, calibration=None, model=None, out=None, summary_out=None,
+             plot=None, force: bool = False, quiet: bool = False):
     """``retpred scan``: read, scan, write CSV (long, and per-point summary) and PNG, print.
 
     ``ph`` and ``gradient_time`` are range texts (``2:8:0.1``); give exactly one. ``phases``
     (comma-separated class names, or 'all') turns a pH scan into a phase x pH scan.
+    ``calibrants`` (measured standards) or ``calibration`` (a file of ``retpred calibrate``)
+    correct every point; they belong to the method's column, so not with ``phases``.
     """
     from rich.table import Table
 
     from retpred.io import read_smiles_list
-    from retpred.method import load_method
     from retpred.model import featurise
-    from retpred.modelfile import load_model
     from retpred.report import write_csv
-    from retpred.workflow import check_outputs, parse_phases
+    from retpred.workflow import check_outputs, parse_phases, prepared_run
 
-    inputs = [analytes, method_path, model]
+    inputs = [analytes, method_path, model, calibrants, calibration]
     check_outputs([out, summary_out, plot], inputs, force)
     if (ph is None) == (gradient_time is None):
         raise InputError("give --ph or --gradient-time (one of them)")
     if phases is not None and ph is None:
         raise InputError("--phases needs --ph (a phase x pH scan)", field="--phases")
+    if phases is not None and (calibrants is not None or calibration is not None):
+        raise InputError("a calibration belongs to the method's column; --phases compares "
+                         "other columns, so scan them without it", field="--phases")
     if not (math.isfinite(rs_target) and rs_target > 0):
         raise InputError(f"resolution target must be > 0, got {rs_target:g}", field="--rs-target")
-    method = load_method(method_path)
-    mdl = load_model(model)
+    method, mdl, prep = prepared_run(method_path, model, calibrants, calibration)
+    cal = prep.calibration
     smiles, names = read_smiles_list(analytes)
     sol = featurise(smiles)
     phase_result = None
@@ -950,12 +953,13 @@ def run_scan(analytes, method_path, *, ph: str | None = None, gradient_time: str
                                          rs_target=rs_target)
             results = list(phase_result.scans.values())
         else:
-            results = [ph_scan(method, mdl, sol, names, values, rs_target)]
+            results = [ph_scan(method, mdl, sol, names, values, rs_target, calibration=cal)]
     else:
         values = parse_range(gradient_time, "--gradient-time", 0.0)
         if values.min() <= 0:
             raise InputError("gradient times must be > 0 min", field="--gradient-time")
-        results = [gradient_time_scan(method, mdl, sol, names, values, rs_target)]
+        results = [gradient_time_scan(method, mdl, sol, names, values, rs_target,
+                                      calibration=cal)]
     long = pd.concat([scan_to_frame(r) for r in results], ignore_index=True)
     per = pd.concat([scan_summary_frame(r) for r in results], ignore_index=True)
     if out is not None:
@@ -971,6 +975,11 @@ def run_scan(analytes, method_path, *, ph: str | None = None, gradient_time: str
 
         console = make_console()
         console.print(method_summary(method))
+        if cal is not None:
+            console.print(f"calibrated with {cal.n_calibrants} reference compound(s) at the "
+                          f"method's pH, applied at every point ({cal.describe()})")
+            for w in cal.warnings:
+                console.print(f"[yellow]warning:[/] {w}")
         if phase_result is not None:
             t = Table(title="Columns over the pH range (class-median HSM parameters)")
             for c in ("rank", "phase", "best pH", "smallest Rs", "worst pair", "pairs below",

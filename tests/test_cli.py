@@ -173,6 +173,36 @@ def test_calibrate_writes_file_used_by_predict(shipped_model, demo_dir, analytes
     assert a.read_bytes() == b.read_bytes()
 
 
+def test_scan_with_calibrants_matches_calibrated_predict(shipped_model, demo_dir, analytes,
+                                                        tmp_path):
+    # the same calibration, fitted at the method's pH: a pH scan point at that pH must give
+    # the times that predict gives with it, and differ from the uncalibrated scan
+    cal = tmp_path / "cal.csv"
+    # invented standards (demo-only data: checks the plumbing, not accuracy)
+    cal.write_text("name,smiles,rt_min\ncaffeine,Cn1cnc2c1c(=O)n(C)c(=O)n2C,1.9\n"
+                   "phenol,Oc1ccccc1,4.0\ntoluene,Cc1ccccc1,7.1\n"
+                   "naphthalene,c1ccc2ccccc2c1,7.9\n")
+    method = demo_dir / "method.toml"
+    pred, long, plain = tmp_path / "p.csv", tmp_path / "s.csv", tmp_path / "s0.csv"
+    assert run("predict", analytes, "-m", method, "--calibrants", cal, "--out", pred,
+               "-q").exit_code == 0
+    res = run("scan", analytes, "-m", method, "--ph", "2.7:2.7:0.1", "--calibrants", cal,
+              "--out", long)
+    assert res.exit_code == 0, res.output
+    assert "calibrated with 4 reference compound(s)" in res.output
+    assert run("scan", analytes, "-m", method, "--ph", "2.7:2.7:0.1", "--out", plain,
+               "-q").exit_code == 0
+    p = pd.read_csv(pred).dropna(subset=["rt_min"]).set_index("name")["rt_min"]
+    sc = pd.read_csv(long).set_index("analyte")["rt_min"].loc[p.index]
+    s0 = pd.read_csv(plain).set_index("analyte")["rt_min"].loc[p.index]
+    np.testing.assert_allclose(sc.to_numpy(), p.to_numpy(), rtol=0, atol=1e-6)
+    assert np.max(np.abs(s0.to_numpy() - p.to_numpy())) > 0.05
+    # a calibration belongs to its column: not with a phase comparison
+    bad = run("scan", analytes, "-m", method, "--ph", "2:4:1", "--phases", "all",
+              "--calibrants", cal)
+    assert bad.exit_code == 2 and "--phases" in bad.output
+
+
 def test_calibration_file_from_another_model_is_warned(shipped_model, demo_dir, analytes,
                                                        tmp_path):
     # invented standards (demo-only data: checks the plumbing, not accuracy)
