@@ -288,6 +288,16 @@ class Calibration:
         return (f"compound-factor correction from {self.n_factor_calibrants} calibrant(s) "
                 "the open data know, applied to the analytes they know too")
 
+    def notes(self) -> list[str]:
+        """The report lines of a run with this calibration: what it is, its leave-one-out
+        error, the compound-factor note and the warnings."""
+        head = (f"calibrated with {self.n_calibrants} reference compound(s), "
+                f"correction: {self.describe()}")
+        if np.isfinite(self.loo_median_abs_error_min):
+            head += f", leave-one-out median error {self.loo_median_abs_error_min:.2f} min"
+        factor = self.factor_note()
+        return [head, *([factor] if factor else []), *self.warnings]
+
     def to_json(self) -> str:
         d = asdict(self)
         d["format"] = CALIBRATION_FORMAT

@@ -976,10 +976,11 @@ def run_scan(analytes, method_path, *, ph: str | None = None, gradient_time: str
         console = make_console()
         console.print(method_summary(method))
         if cal is not None:
-            console.print(f"calibrated with {cal.n_calibrants} reference compound(s) at the "
-                          f"method's pH, applied at every point ({cal.describe()})")
-            for w in cal.warnings:
-                console.print(f"[yellow]warning:[/] {w}")
+            notes = cal.notes()
+            console.print(f"{notes[0]}; fitted at the method's pH and gradient, applied at "
+                          "every point")
+            for line in notes[1:]:
+                console.print(f"[yellow]note:[/] {line}")
         if phase_result is not None:
             t = Table(title="Columns over the pH range (class-median HSM parameters)")
             for c in ("rank", "phase", "best pH", "smallest Rs", "worst pair", "pairs below",

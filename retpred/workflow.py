@@ -138,15 +138,7 @@ def run_predict(
     notes = list(method.warnings)
     if prep.calibration is not None:
         cal = prep.calibration
-        notes.append(
-            f"calibrated with {cal.n_calibrants} reference compound(s), "
-            f"correction: {cal.describe()}"
-            + (f", leave-one-out median error {cal.loo_median_abs_error_min:.2f} min"
-               if np.isfinite(cal.loo_median_abs_error_min) else "")
-        )
-        if cal.factor_note():
-            notes.append(cal.factor_note())
-        notes.extend(cal.warnings)
+        notes.extend(cal.notes())
         from retpred.calibration import coverage_warning
 
         w = coverage_warning(cal, np.asarray(summary.rt_min, float))
