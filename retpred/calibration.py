@@ -544,9 +544,10 @@ def fit_calibration(
                     f"calibrant '{name}' looks like an outlier "
                     f"(leave-one-out error {e:+.2f} min)"
                 )
-    dropped = x.size - n
+    dropped = [name for name, k in zip(names, ok, strict=True) if not k]
     if dropped:
-        warnings.append(f"{dropped} calibrant(s) not usable (bad structure or rt before t0)")
+        warnings.append(f"{len(dropped)} calibrant(s) not usable (bad structure or rt before "
+                        f"t0): {', '.join(dropped)}")
     return Calibration(
         maps=maps, nb_fingerprints=nb_fp, n_factor_calibrants=n_fac, n_calibrants=n,
         loo_median_abs_error_min=blend_loo, loo_errors_min=loo,

@@ -401,3 +401,16 @@ def test_blend_applies_to_a_grid_of_conditions_row_by_row(prog, traits12):
     whole = cal.apply(grid, tr)
     for r in range(grid.shape[0]):
         np.testing.assert_allclose(whole[r], cal.apply(grid[r], tr), rtol=0, atol=1e-12)
+
+
+def test_unusable_calibrants_are_named(prog):
+    # a standard without a usable structure (NaN prediction) or eluting at t0 is left out
+    # and named in the warning; the others still calibrate
+    pred, obs, rt, s = _case(prog, 6, shift=0.2)
+    pred[1] = np.nan
+    rt[4] = np.nan
+    cal = fit_calibration(pred, obs, rt, lambda v: elute(v, s, prog).rt_min,
+                          names=[f"std{i}" for i in range(6)])
+    assert cal.n_calibrants == 4
+    assert any("2 calibrant(s) not usable" in w and w.endswith("std1, std4")
+               for w in cal.warnings)
