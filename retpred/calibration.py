@@ -513,13 +513,15 @@ def fit_calibration(
     loo: dict[str, float] = {}
     loo_lk = np.empty((len(kinds), n))
     if n >= 2:
+        # each calibrant's own traits, taken once for all kinds
+        tr_one = [None if ti_traits is None else ti_traits.take(np.array([i]))
+                  for i in range(n)]
         for k, kind in enumerate(kinds):
             for i in range(n):
                 keep = np.arange(n) != i
                 e_keep = ei[keep] if ei is not None else None
                 fit_i = _fit(kind, xi[keep], yi[keep], e_keep, wi[keep])
-                tr_i = ti_traits.take(np.array([i])) if ti_traits is not None else None
-                loo_lk[k, i] = fit_i.apply(xi[i : i + 1], tr_i)[0]
+                loo_lk[k, i] = fit_i.apply(xi[i : i + 1], tr_one[i])[0]
             loo[kind] = float(np.nanmedian(np.abs(rt_at(loo_lk[k]) - ti)))
         weights = blend_weights(np.array([loo[k] for k in kinds]))
     else:
