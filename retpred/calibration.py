@@ -247,11 +247,17 @@ class Calibration:
         return self.maps[0].kind if len(self.maps) == 1 else "blend"
 
     def describe(self) -> str:
-        """E.g. ``"blend of linear 0.52, selectivity 0.31, shift 0.17"``."""
+        """E.g. ``"blend of linear 0.52, selectivity 0.31, shift 0.17"``; maps whose weight
+        rounds to 0.00 are counted, not listed (``"linear 1.00 (2 maps below 0.01)"``)."""
         if len(self.maps) == 1:
             return self.maps[0].kind
         parts = sorted(self.maps, key=lambda m: -m.weight)
-        return "blend of " + ", ".join(f"{m.kind} {m.weight:.2f}" for m in parts)
+        shown = [m for m in parts if m.weight >= 0.005] or parts[:1]
+        text = ", ".join(f"{m.kind} {m.weight:.2f}" for m in shown)
+        hidden = len(parts) - len(shown)
+        if hidden:
+            text += f" ({hidden} map{'s' if hidden > 1 else ''} below 0.01)"
+        return text if len(shown) == 1 else "blend of " + text
 
     def map_of(self, kind: str) -> CalibrationMap | None:
         return next((m for m in self.maps if m.kind == kind), None)

@@ -83,6 +83,18 @@ def test_blend_is_the_weighted_mean_of_its_maps():
     assert cal.describe() == "blend of linear 0.75, shift 0.25"
 
 
+def test_description_counts_maps_weighted_to_nothing():
+    # a blend reported as "linear 1.00, shift 0.00" reads as if the shift took part
+    def blend(**weights):
+        return Calibration(maps=tuple(CalibrationMap(kind=k, offset=0.0, weight=w)
+                                      for k, w in weights.items()))
+
+    assert (blend(shift=0.004, linear=0.994, monotone=0.002).describe()
+            == "linear 0.99 (2 maps below 0.01)")
+    assert (blend(shift=0.003, linear=0.6, selectivity=0.397).describe()
+            == "blend of linear 0.60, selectivity 0.40 (1 map below 0.01)")
+
+
 def test_outlier_is_warned_and_does_not_drag_the_fit(prog):
     pred, obs, rt, s = _case(prog, 12, shift=0.1, slope=1.0, noise=0.01, seed=3)
     obs_bad = obs.copy()
