@@ -14,7 +14,7 @@ import dataclasses
 
 import numpy as np
 import pytest
-from tests_support import class_log_kw, warming_shift
+from tests_support import class_log_kw, practice_warming_bounds, warming_shift
 
 from retpred.method import load_method
 from retpred.predict import predict_frame, prepare
@@ -96,11 +96,15 @@ def test_ethylbenzene_moves_between_columns_by_its_kEB_ratio(small_model, organi
 
 
 @pytest.mark.parametrize("organic", ["acetonitrile", "methanol"])
-def test_a_warmer_column_never_retains_longer(small_model, organic):
+def test_a_warmer_column_retains_less_as_in_practice(small_model, organic):
     # common practice: reversed-phase retention falls as the column warms (exothermic
     # transfer, a negative van 't Hoff enthalpy; about 1-2 % of k per degree, from memory),
-    # for polar analytes too
-    assert np.all(warming_shift(small_model, organic) <= 1e-12)
+    # for polar analytes too. The open data cannot teach it (one temperature per system):
+    # free, the fit made polar analytes retained longer at 50 C, and bounded at zero it
+    # gave a fifth of practice's effect.
+    lo, hi = practice_warming_bounds(30.0, 50.0)
+    shift = warming_shift(small_model, organic)
+    assert np.all(shift <= hi + 0.005) and np.all(shift >= lo), shift
 
 
 def _at_ph(method, ph):

@@ -9,7 +9,7 @@ import shutil
 import numpy as np
 import pytest
 import skops.io as sio
-from tests_support import class_log_kw, warming_shift
+from tests_support import class_log_kw, practice_warming_bounds, warming_shift
 
 from retpred.errors import ModelFileError
 from retpred.modelfile import (
@@ -97,11 +97,13 @@ def test_shipped_model_keeps_c18_most_retentive_for_nonpolar_analytes(shipped_mo
         assert np.all(lk["C18"] > lk["C8"]) and np.all(lk["C8"] > lk["CN"]), lk
 
 
-def test_shipped_model_never_retains_longer_on_a_warmer_column(shipped_model):
+def test_shipped_model_retains_less_on_a_warmer_column_as_in_practice(shipped_model):
     # common practice (see tests/test_model.py): the shipped model's free temperature terms
     # once made analytes below log P 2 elute later at 50 C than at 30 C
+    lo, hi = practice_warming_bounds(30.0, 50.0)
     for organic in ("acetonitrile", "methanol"):
-        assert np.all(warming_shift(shipped_model, organic) <= 1e-12)
+        shift = warming_shift(shipped_model, organic)
+        assert np.all(shift <= hi + 0.005) and np.all(shift >= lo), (organic, shift)
 
 
 @pytest.mark.opendata

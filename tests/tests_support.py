@@ -4,6 +4,8 @@ from __future__ import annotations
 
 from pathlib import Path
 
+import numpy as np
+
 
 def write_system_method(system, path: Path):
     """Write an open-data system's own method as a TOML method file."""
@@ -39,6 +41,14 @@ def class_log_kw(model, solutes, phase, organic, temperature_c=30.0, ph=3.0):
     ctx = SystemContext(organic=organic, ph=ph, temperature_c=temperature_c,
                         hsm=class_hsm(phase))
     return model.retention_parameters(solutes, ctx)[0]
+
+
+def practice_warming_bounds(t_low_c=30.0, t_high_c=50.0):
+    """``log kw`` change from ``t_low_c`` to ``t_high_c`` at 2 % and at 1 % less k per
+    degree (common practice, from memory: reversed-phase retention falls by roughly 1-2 %
+    of k per degree as the column warms)."""
+    dt = t_high_c - t_low_c
+    return dt * np.log10(0.98), dt * np.log10(0.99)
 
 
 def warming_shift(model, organic):
