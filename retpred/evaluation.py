@@ -132,19 +132,31 @@ def descriptor_baseline(ts: TrainingSet, train: np.ndarray, test: np.ndarray) ->
     return gbm.predict(x[test])
 
 
-def cross_validate(ts: TrainingSet, n_folds: int = 5, with_baseline: bool = True,
-                   **params) -> FoldPredictions:
-    groups = ts.groups
+def fold_of_rows(ts: TrainingSet, n_folds: int = 5, split: str = "source") -> np.ndarray:
+    """Fold of every row: ``GroupKFold`` over the rows' groups (``TrainingSet.groups_by``),
+    so a source publication (or, with ``split="dataset"``, a system) is never split."""
+    groups = ts.groups_by(split)
     n_folds = min(n_folds, len(np.unique(groups)))
+    fold = np.full(ts.rt_min.size, -1)
+    for f, (_tr, te) in enumerate(GroupKFold(n_splits=n_folds).split(ts.rt_min,
+                                                                       groups=groups)):
+        fold[te] = f
+    return fold
+
+
+def cross_validate(ts: TrainingSet, n_folds: int = 5, with_baseline: bool = True,
+                   split: str = "source", **params) -> FoldPredictions:
+    """Held-out predictions of every row from a model fitted on the other folds
+    (:func:`fold_of_rows`; by source publication unless ``split="dataset"``)."""
+    fold = fold_of_rows(ts, n_folds, split)
     lk = np.full(ts.rt_min.size, np.nan)
     base = np.full(ts.rt_min.size, np.nan)
-    fold = np.full(ts.rt_min.size, -1)
     factors = None
-    for f, (tr, te) in enumerate(GroupKFold(n_splits=n_folds).split(ts.rt_min, groups=groups)):
-        trm = np.zeros(ts.rt_min.size, bool)
-        trm[tr] = True
+    for f in range(int(fold.max()) + 1):
+        tem = fold == f
+        trm = ~tem
+        tr, te = np.flatnonzero(trm), np.flatnonzero(tem)
         model = fit_model(ts, trm, **params)
-        tem = ~trm
         lk[tem] = model.retention_parameters(
             ts.solutes, ts.contexts, which=ts.system_idx[tem], idx=ts.solute_idx[tem]
         )[0]
@@ -154,7 +166,6 @@ def cross_validate(ts: TrainingSet, n_folds: int = 5, with_baseline: bool = True
         factors[tem] = fac
         if with_baseline:
             base[tem] = descriptor_baseline(ts, tr, te)
-        fold[tem] = f
     return FoldPredictions(log_kw=lk, fold=fold, baseline_frac=base, factors=factors)
 
 

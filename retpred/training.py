@@ -41,7 +41,17 @@ class TrainingSet:
 
     @property
     def groups(self) -> np.ndarray:
-        return np.array([self.systems[i].group for i in self.system_idx])
+        """Source publication of each row (the validation's default grouping)."""
+        return self.groups_by("source")
+
+    def groups_by(self, split: str) -> np.ndarray:
+        """Group of each row for a grouped split: its ``"source"`` publication (every
+        system of a publication left out together) or its ``"dataset"`` (one system)."""
+        if split == "source":
+            return np.array([self.systems[i].group for i in self.system_idx])
+        if split == "dataset":
+            return np.array([self.systems[i].dataset for i in self.system_idx])
+        raise ValueError(f"unknown split '{split}' (source or dataset)")
 
     def subset(self, mask: np.ndarray) -> TrainingSet:
         return TrainingSet(

@@ -18,6 +18,7 @@ from retpred.evaluation import (
     cross_validate,
     fit_analyte_risk,
     fit_pair_sd_scale,
+    fold_of_rows,
     interval_hits,
     order_accuracy,
     ph_series,
@@ -283,3 +284,21 @@ def test_analyte_risk_params_per_regime_and_wiring():
             table["rt_min"].to_numpy(), table["peak_width_min"].to_numpy() / 4, scale * sd,
             0.3), a, b)
         np.testing.assert_allclose(got, ref, rtol=1e-12)
+
+
+def test_folds_never_split_a_group(small_training_set):
+    # retention-physics.md section 8: split by dataset, better by source publication, never
+    # by row. By source, every publication's systems fall in one fold; by dataset only each
+    # system does, and a publication with several systems is then spread over the folds.
+    ts = small_training_set
+    by_source = fold_of_rows(ts, 4, "source")
+    by_dataset = fold_of_rows(ts, 4, "dataset")
+    assert by_source.min() == 0 and by_source.max() == 3
+    for labels, fold in ((ts.groups_by("source"), by_source),
+                         (ts.groups_by("dataset"), by_dataset)):
+        for g in np.unique(labels):
+            assert np.unique(fold[labels == g]).size == 1, g
+    sources = ts.groups_by("source")
+    assert any(np.unique(by_dataset[sources == g]).size > 1 for g in np.unique(sources))
+    with pytest.raises(ValueError, match="unknown split"):
+        ts.groups_by("row")
