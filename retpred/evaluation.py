@@ -121,7 +121,8 @@ class FoldPredictions:
 
 
 def descriptor_baseline(ts: TrainingSet, train: np.ndarray, test: np.ndarray) -> np.ndarray:
-    """Pooled descriptor GBM predicting rt as a fraction of the program length."""
+    """Pooled descriptor GBM predicting rt as a fraction of the program length, fitted on
+    rows ``train`` and predicting rows ``test`` (index arrays or boolean masks)."""
     ends = np.array([s.program.program_end_min for s in ts.systems])[ts.system_idx]
     y = ts.rt_min / ends
     x = np.column_stack(
@@ -155,7 +156,6 @@ def cross_validate(ts: TrainingSet, n_folds: int = 5, with_baseline: bool = True
     for f in range(int(fold.max()) + 1):
         tem = fold == f
         trm = ~tem
-        tr, te = np.flatnonzero(trm), np.flatnonzero(tem)
         model = fit_model(ts, trm, **params)
         lk[tem] = model.retention_parameters(
             ts.solutes, ts.contexts, which=ts.system_idx[tem], idx=ts.solute_idx[tem]
@@ -165,7 +165,7 @@ def cross_validate(ts: TrainingSet, n_folds: int = 5, with_baseline: bool = True
             factors = np.zeros((ts.rt_min.size, fac.shape[1]))
         factors[tem] = fac
         if with_baseline:
-            base[tem] = descriptor_baseline(ts, tr, te)
+            base[tem] = descriptor_baseline(ts, trm, tem)
     return FoldPredictions(log_kw=lk, fold=fold, baseline_frac=base, factors=factors)
 
 
