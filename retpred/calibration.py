@@ -564,17 +564,29 @@ def fit_calibration(
     )
 
 
-def coverage_warning(cal: Calibration, rt_min: np.ndarray) -> str | None:
-    """A warning when analytes elute well outside the calibrants' window."""
+def outside_window(cal: Calibration, rt_min: np.ndarray) -> np.ndarray:
+    """True where a predicted time lies more than a tenth of the calibrants' time span
+    outside their window (NaN times and an empty window give False)."""
     lo, hi = cal.cal_rt_range_min
+    rt = np.asarray(rt_min, dtype=float)
     if not np.isfinite(lo):
-        return None
+        return np.zeros(rt.shape, dtype=bool)
     span = max(hi - lo, 1e-9)
-    rt = rt_min[np.isfinite(rt_min)]
-    outside = int(np.sum((rt < lo - 0.1 * span) | (rt > hi + 0.1 * span)))
-    if outside:
+    with np.errstate(invalid="ignore"):
+        return (rt < lo - 0.1 * span) | (rt > hi + 0.1 * span)
+
+
+def coverage_warning(cal: Calibration, rt_min: np.ndarray, where: str = "") -> str | None:
+    """A warning when analytes elute well outside the calibrants' window (``where``:
+    appended to the count, e.g. " at 3 of 61 pH points (pH 2-3)")."""
+    outside = outside_window(cal, rt_min)
+    if outside.ndim > 1:
+        outside = outside.any(axis=0)
+    n = int(outside.sum())
+    if n:
+        lo, hi = cal.cal_rt_range_min
         return (
-            f"calibrants cover {lo:.2f}-{hi:.2f} min; {outside} analyte(s) are predicted "
-            "outside that window, where the correction is extrapolated"
+            f"calibrants cover {lo:.2f}-{hi:.2f} min; {n} analyte(s) are predicted "
+            f"outside that window{where}, where the correction is extrapolated"
         )
     return None

@@ -32,7 +32,7 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from retpred.calibration import Calibration, SoluteTraits
+from retpred.calibration import Calibration, SoluteTraits, coverage_warning, outside_window
 from retpred.chemistry import Ionisation, ionise
 from retpred.column import (
     column_hsm,
@@ -593,6 +593,8 @@ def _ph_scans(method: Method, model: RetentionModel, solutes: Solutes, names,
             rt = sigma = plates = charge = np.empty(shape)
             status = np.empty(shape, dtype=str)
         warn = base_warn + _skip_warning(col, skipped, lab)
+        if calibration is not None:
+            warn += _ph_coverage(calibration, rt, kept)
         if kept.size == 0:
             warn.append(f"{lab}: no pH point lies inside the column's usable range")
         m_col = dataclasses.replace(method, column=col)
@@ -600,6 +602,18 @@ def _ph_scans(method: Method, model: RetentionModel, solutes: Solutes, names,
                              prog.program_end_min, ramp_time_min(method), prog_t0, rs_target,
                              skipped, pressure, lab, warn, gaps=gaps)
     return out
+
+
+def _ph_coverage(calibration: Calibration, rt: np.ndarray, ph_values: np.ndarray) -> list[str]:
+    """The calibration's coverage warning over the points of a pH scan (same program as
+    the calibrants', so their time window applies at every point), naming the pH range of
+    the points where some analyte is outside it."""
+    points = outside_window(calibration, rt).any(axis=1)
+    if not points.any():
+        return []
+    where = (f" at {int(points.sum())} of {points.size} pH points "
+             f"(pH {ph_values[points].min():g}-{ph_values[points].max():g})")
+    return [coverage_warning(calibration, rt[points], where)]
 
 
 def ph_scan(
@@ -647,6 +661,10 @@ def gradient_time_scan(
                     f"{method.column.ph_min:g}-{method.column.ph_max:g}")
     if worst["warning"]:
         warn.append(worst["warning"])
+    if calibration is not None:  # log kw is the same at every ramp: judge it on the method's
+        own = elute(log_kw[0], s, program_from_method(method, dead_time_min=t0)).rt_min
+        w = coverage_warning(calibration, own, " on the method's own gradient")
+        warn += [w] if w else []
     charge = np.repeat(ion.net_charge, tg.size, axis=0)
     res = _assemble(method, SETTING_GRADIENT_TIME, tg, names, rt, sigma, plates, status, charge,
                     [p.program_end_min for p in programs], tg, t0, rs_target, np.empty(0),

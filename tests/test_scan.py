@@ -425,3 +425,41 @@ def test_trained_retention_falls_as_a_site_ionises(small_model, monoprotic_refer
     inside = ref["pka"].between(3.0, 10.5).to_numpy()
     assert inside.sum() >= 20
     assert np.all(total[acid & inside] < -0.15) and np.all(total[~acid & inside] > 0.15)
+
+
+def test_calibrated_scan_warns_where_analytes_leave_the_calibrants_window(small_model):
+    # Benzoic acid (pKa 4.20, CRC Handbook, from memory) elutes earlier as it ionises
+    # (Henderson-Hasselbalch, retention-physics.md section 4). With a calibration whose
+    # standards bracket its neutral time, the coverage warning (predict's 10 % rule) must
+    # name only the points above about its pKa, up to the top of the scan.
+    from retpred.calibration import Calibration, CalibrationMap
+
+    method = _method(program=((0.0, 5.0, 1.0), (20.0, 95.0, 1.0), (25.0, 95.0, 1.0)), ph=2.5)
+    sol = featurise([BENZOIC_ACID])
+    plain = ph_scan(method, small_model, sol, ["benzoic acid"], [2.5])
+    t_neutral = float(plain.rt_min[0, 0])
+    cal = Calibration(maps=(CalibrationMap(kind="shift", offset=0.0),),
+                      cal_rt_range_min=(t_neutral - 0.5, t_neutral + 0.5))
+    ph = np.round(np.arange(2.0, 8.01, 0.25), 2)
+    res = ph_scan(method, small_model, sol, ["benzoic acid"], ph, calibration=cal)
+    np.testing.assert_allclose(res.rt_min[ph == 2.5, 0], t_neutral, atol=1e-9)  # identity map
+    out = (res.rt_min[:, 0] < t_neutral - 0.6) | (res.rt_min[:, 0] > t_neutral + 0.6)
+    assert out.any() and not out.all()
+    flagged = ph[out]
+    assert flagged.min() > PKA_BENZOIC - 0.5 and flagged.max() == ph.max()
+    warn = [w for w in res.warnings if "calibrants cover" in w]
+    assert len(warn) == 1
+    assert (f"1 analyte(s) are predicted outside that window at {out.sum()} of {ph.size} pH "
+            f"points (pH {flagged.min():g}-{flagged.max():g})") in warn[0]
+    # inside the window at every point: no warning
+    wide = dataclasses.replace(cal, cal_rt_range_min=(0.0, 60.0))
+    res = ph_scan(method, small_model, sol, ["benzoic acid"], ph, calibration=wide)
+    assert not any("calibrants cover" in w for w in res.warnings)
+    # a ramp scan keeps log kw: judged once, on the method's own gradient
+    narrow = dataclasses.replace(cal, cal_rt_range_min=(t_neutral + 2.0, t_neutral + 4.0))
+    for c, expected in ((cal, False), (narrow, True)):
+        res = gradient_time_scan(method, small_model, sol, ["benzoic acid"], [10.0, 20.0, 40.0],
+                                 calibration=c)
+        warn = [w for w in res.warnings if "calibrants cover" in w]
+        assert bool(warn) == expected
+        assert all("on the method's own gradient" in w for w in warn)
