@@ -65,7 +65,7 @@ from retpred.method import HsmParameters
 from retpred.structures import StandardisedBatch, standardise_mols, standardise_smiles
 
 #: Model-file format version; a file of another format is refused.
-MODEL_FORMAT = 7
+MODEL_FORMAT = 8
 N_BITS = 256
 #: Snyder and Dolan's rule of thumb S = 0.25 M^0.5 (retention-physics.md section 2).
 S_RULE_COEF = 0.25
@@ -123,9 +123,19 @@ class Solutes:
         return self.descriptors[:, _d("mw")]
 
     @cached_property
+    def _stereo_forms(self) -> list[tuple[str, str]]:
+        return [stereo_forms(t) for t in self.batch.smiles]
+
+    @cached_property
     def memory_keys(self) -> list[str]:
-        """Compound-memory key of every row (:func:`compound_key`), hashed once a batch."""
-        return [compound_key(t) for t in self.batch.smiles]
+        """Compound-memory key of every row: :func:`compound_key` of the structure's
+        enantiomer-invariant form (:func:`stereo_forms`), hashed once a batch."""
+        return [compound_key(a) for a, _ in self._stereo_forms]
+
+    @cached_property
+    def skeleton_keys(self) -> list[str]:
+        """:func:`compound_key` of each row's stereo-blind form (the memory's fallback)."""
+        return [compound_key(b) for _, b in self._stereo_forms]
 
 
 def featurise(smiles: Sequence[str] | None = None, mols: Sequence | None = None) -> Solutes:
@@ -382,6 +392,10 @@ class RetentionModel:
     memory_: dict = field(default_factory=dict)
     #: compound factors {structure key: [v_1, ..., v_k]} (see :func:`fit_compound_factors`)
     factors_: dict = field(default_factory=dict)
+    #: fallbacks of both for stereoisomers not in training {stereo-blind key: mean of the
+    #: isomers that are} (see :func:`stereo_forms`)
+    skeleton_memory_: dict = field(default_factory=dict)
+    skeleton_factors_: dict = field(default_factory=dict)
 
     # --- prediction ------------------------------------------------------------------
     def retention_parameters(
@@ -421,20 +435,33 @@ class RetentionModel:
         s = np.where(ok, s, np.nan)
         return log_kw, s
 
+    @staticmethod
+    def _lookup(exact: dict, skeleton: dict, solutes: Solutes, i: int):
+        """A structure's entry: its own (or its enantiomer's), else the mean of its
+        stereoisomers', else its stereo-blind form's own; None if none is known."""
+        got = exact.get(solutes.memory_keys[i])
+        if got is None:
+            sk = solutes.skeleton_keys[i]
+            got = skeleton.get(sk, exact.get(sk))
+        return got
+
     def memory_offsets(self, solutes: Solutes, idx: np.ndarray) -> np.ndarray:
-        """Compound-memory offset ``u`` of rows ``idx`` (0 for structures not in training)."""
-        mem, keys = self.memory_, solutes.memory_keys
-        return np.array([mem.get(keys[i], 0.0) for i in idx], dtype=float)
+        """Compound-memory offset ``u`` of rows ``idx`` (0 for structures not in training,
+        stereoisomers aside: see :meth:`_lookup`)."""
+        mem, skel = self.memory_, self.skeleton_memory_
+        return np.array([self._lookup(mem, skel, solutes, i) or 0.0 for i in idx],
+                        dtype=float)
 
     def factor_matrix(self, solutes: Solutes, idx: np.ndarray | None = None) -> np.ndarray:
         """(rows, rank) compound factors of rows ``idx`` (default all); zeros for structures
         without factors (new to the training data, or seen on too few systems)."""
         idx = np.arange(len(solutes)) if idx is None else np.asarray(idx)
-        fac, keys = self.factors_, solutes.memory_keys
+        fac = self.factors_
         rank = len(next(iter(fac.values()))) if fac else FACTOR_RANK
         out = np.zeros((idx.size, rank))
         for r, i in enumerate(idx):
-            v = fac.get(keys[i]) if solutes.usable[i] else None
+            v = self._lookup(fac, self.skeleton_factors_, solutes, i) if solutes.usable[i] \
+                else None
             if v is not None:
                 out[r] = v
         return out
@@ -543,24 +570,33 @@ class RetentionModel:
         self.ridge_ = ridge
         self.gbm_ = gbm
         self.lab_linear_ = self.lab_gbm_ = self.lab_neighbours_ = None
-        self.memory_ = {}
-        self.factors_ = {}
+        self.memory_, self.factors_ = {}, {}
+        self.skeleton_memory_, self.skeleton_factors_ = {}, {}
         self.domain_ = fit_domain(solutes.descriptors[np.unique(idx)])
         idx, which = np.asarray(idx), np.asarray(which)
         resid = log_kw_obs - self.retention_parameters(solutes, contexts, which, idx)[0]
         ok = np.isfinite(resid)
-        keys, offsets = fit_compound_memory(resid[ok], idx[ok], which[ok])
-        sm = solutes.batch.smiles
-        self.memory_ = {compound_key(sm[k]): round(float(v), 5)
-                        for k, v in zip(keys, offsets, strict=True)}
-        u = np.zeros(len(solutes))
-        u[keys] = offsets
+        # one compound per memory key: salt forms that standardise to one parent, and
+        # enantiomers, pool their rows
+        mkeys = np.array(solutes.memory_keys, dtype=object)
+        ukeys, kid = np.unique(mkeys[idx], return_inverse=True)
+        first = np.zeros(ukeys.size, dtype=int)
+        first[kid] = idx  # a solute of each key (all of them share its stereo-blind form)
+        skeleton = [solutes.skeleton_keys[i] for i in first]
+        comps, offsets = fit_compound_memory(resid[ok], kid[ok], which[ok])
+        self.memory_ = {ukeys[k]: round(float(v), 5) for k, v in zip(comps, offsets, strict=True)}
+        u = np.zeros(ukeys.size)
+        u[comps] = offsets
+        self.skeleton_memory_ = _skeleton_means(ukeys, skeleton, dict(zip(comps, offsets,
+                                                                         strict=True)))
         rows = np.flatnonzero(ok)
-        pred_lk = log_kw_obs[rows] - resid[rows] + u[idx[rows]]
-        comps, v = fit_compound_factors(log_kw_obs[rows], pred_lk, idx[rows], which[rows],
+        pred_lk = log_kw_obs[rows] - resid[rows] + u[kid[rows]]
+        comps, v = fit_compound_factors(log_kw_obs[rows], pred_lk, kid[rows], which[rows],
                                         seed=self.random_state)
-        self.factors_ = {compound_key(sm[k]): [round(float(a), 5) for a in row]
+        self.factors_ = {ukeys[k]: [round(float(a), 5) for a in row]
                          for k, row in zip(comps, v, strict=True)}
+        self.skeleton_factors_ = _skeleton_means(ukeys, skeleton, dict(zip(comps, v,
+                                                                          strict=True)))
         return self
 
     def outside_domain(self, solutes: Solutes) -> np.ndarray:
@@ -589,10 +625,62 @@ class RetentionModel:
         }
 
 
+def stereo_forms(smiles: str) -> tuple[str, str]:
+    """``(memory form, stereo-blind form)`` canonical SMILES of a standardised structure.
+
+    Enantiomers are retained identically in an achiral environment such as a reversed-phase
+    column and eluent (any chromatography textbook), and so is their racemate. A structure
+    whose only stereo element is one tetrahedral centre is therefore remembered under its
+    stereo-blind form (no stereo marks): R, S and unspecified are one compound. With two or
+    more centres, or a double-bond geometry, the memory form is the smaller of its canonical
+    SMILES and its mirror image's (every tetrahedral centre inverted; double bonds are not
+    mirrored), so diastereomers stay apart and enantiomers share it; the stereo-blind form is
+    then the fallback key for a stereoisomer the training data do not hold. A structure
+    without stereo marks is its own form twice; one RDKit cannot read is returned as is.
+    """
+    bonds = "/" in smiles or "\\" in smiles
+    if "@" not in smiles and not bonds:
+        return smiles, smiles
+    mol = Chem.MolFromSmiles(smiles)
+    if mol is None:
+        return smiles, smiles
+    flat = Chem.MolToSmiles(mol, isomericSmiles=False)
+    swap = {Chem.ChiralType.CHI_TETRAHEDRAL_CW: Chem.ChiralType.CHI_TETRAHEDRAL_CCW,
+            Chem.ChiralType.CHI_TETRAHEDRAL_CCW: Chem.ChiralType.CHI_TETRAHEDRAL_CW}
+    centres = [atom for atom in mol.GetAtoms() if atom.GetChiralTag() in swap]
+    if not bonds and len(centres) <= 1:
+        return flat, flat
+    own = Chem.MolToSmiles(mol)
+    if not centres:
+        return own, flat
+    for atom in centres:
+        atom.SetChiralTag(swap[atom.GetChiralTag()])
+    return min(own, Chem.MolToSmiles(mol)), flat
+
+
 def compound_key(smiles: str) -> str:
     """Key of a standardised structure in the compound memory: the first 16 hex digits of
     the SHA-256 of its canonical SMILES (the structure itself is not stored)."""
     return hashlib.sha256(smiles.encode("utf-8")).hexdigest()[:16]
+
+
+def _skeleton_means(keys, skeleton: list[str], values: dict) -> dict:
+    """``{stereo-blind key: mean value}`` over the compounds (``keys[i]``, with values
+    ``values[i]``) of each stereo-blind form that some stereo-marked compound shares (a form
+    without stereo marks is found under its own memory key); values rounded like the
+    memory's."""
+    groups: dict[str, list] = {}
+    marked = set()
+    for i, value in values.items():
+        groups.setdefault(skeleton[i], []).append(np.asarray(value, dtype=float))
+        if skeleton[i] != keys[i]:
+            marked.add(skeleton[i])
+    out = {}
+    for sk in marked:
+        mean = np.mean(groups[sk], axis=0)
+        out[sk] = round(float(mean), 5) if mean.ndim == 0 else [round(float(a), 5)
+                                                                for a in mean]
+    return out
 
 
 def fit_compound_memory(

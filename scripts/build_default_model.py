@@ -125,7 +125,6 @@ def main(argv=None) -> int:
     summary["ph_shift_n_ionising"] = ph["n_ionising"]
     summary["ph_shift_sign_agreement_compounds"] = ph["agree_compound"]
     summary["ph_shift_n_compounds"] = ph["n_compound"]
-    summary["n_memory_compounds"] = int(np.unique(ts.solute_idx).size)
     print(f"cross-validated ({time.perf_counter() - t_start:.0f} s)")
     print(risk_table.to_string())
     for regime, t in analyte_tables.items():
@@ -140,6 +139,8 @@ def main(argv=None) -> int:
                          table, "-", time.perf_counter() - t_start))
         return 0
     model = fit_model(ts)
+    summary["n_memory_compounds"] = len(model.memory_)
+    summary["n_skeleton_forms"] = len(model.skeleton_memory_)
     model.residual_quantiles_ = {"zero_shot": q_zero, "calibrated": q_cal,
                                  "zero_shot_new": q_zero_new, "calibrated_new": q_cal_new,
                                  "levels": [0.05, 0.95]}
@@ -263,10 +264,13 @@ share a direction across sources, and the terms made the errors worse.
 
 Compound memory: for the {summary.get('n_memory_compounds')} structures of the training
 data, the model keeps the shrunken mean of their training residuals (after each system's
-offset), keyed by a hash of the standardised SMILES; the left-out-source figures above
-include it (a compound measured by other sources than the left-out one is remembered from
-those). It is one constant per compound, so it does not change a predicted pH or column
-shift.
+offset), keyed by a hash of the standardised SMILES (enantiomers and their racemate share
+one entry, since an achiral column retains them alike, while diastereomers keep their own;
+salt forms pool with their parent); the left-out-source figures above include it (a compound
+measured by other sources than the left-out one is remembered from those). A stereoisomer
+that training does not hold takes the mean of those it does
+({summary.get('n_skeleton_forms')} stereo-blind forms). It is one constant per compound, so
+it does not change a predicted pH or column shift.
 
 Calibration (the 10-calibrant figures): shift, linear, selectivity (log P and TPSA terms)
 and monotone maps of the predicted log kw, each followed by the compound-factor correction

@@ -233,11 +233,15 @@ def test_compound_memory_helps_compounds_seen_on_other_sources(shared_compounds_
     error of the held-out systems (after each system's median offset) by at least 10 %;
     structures absent from training are untouched."""
     ts, test, model = shared_compounds_case
-    seen = np.isin(ts.solute_idx[test], ts.solute_idx[~test])
+    keys = np.array(ts.solutes.memory_keys, dtype=object)  # one per structure and its mirror
+    skeletons = np.array(ts.solutes.skeleton_keys, dtype=object)
+    train_idx = ts.solute_idx[~test]
+    seen = np.isin(keys[ts.solute_idx[test]], keys[train_idx]) | np.isin(
+        skeletons[ts.solute_idx[test]], skeletons[train_idx])
     assert seen.sum() >= 100 and (~seen).sum() >= 1
     args = dict(which=ts.system_idx[test], idx=ts.solute_idx[test])
     with_mem = model.retention_parameters(ts.solutes, ts.contexts, **args)[0]
-    without = dataclasses.replace(model, memory_={}).retention_parameters(
+    without = dataclasses.replace(model, memory_={}, skeleton_memory_={}).retention_parameters(
         ts.solutes, ts.contexts, **args)[0]
     sysi = ts.system_idx[test]
 
@@ -362,3 +366,97 @@ def test_learned_charge_terms_keep_a_visible_monotone_ion_drop(small_model):
         for coef in (c[charge], c[charge] + c[f"methanol*{charge}"]):
             assert coef <= 0.5 * drop + 1e-9
             assert np.all(np.diff(_single_site_log_k(f0, drop, coef)) >= -1e-9)
+
+
+# --- stereoisomers in the compound memory ------------------------------------------------
+# Enantiomers are retained identically in an achiral environment (reversed-phase column and
+# eluent); diastereomers are different compounds (stereochemistry textbooks, e.g. IUPAC
+# definitions of enantiomer and diastereoisomer). Inverting every tetrahedral centre of a
+# structure gives its enantiomer; inverting one of two gives a diastereomer.
+
+def _invert(smiles: str, which=None) -> str:
+    from rdkit import Chem
+
+    mol = Chem.MolFromSmiles(smiles)
+    swap = {Chem.ChiralType.CHI_TETRAHEDRAL_CW: Chem.ChiralType.CHI_TETRAHEDRAL_CCW,
+            Chem.ChiralType.CHI_TETRAHEDRAL_CCW: Chem.ChiralType.CHI_TETRAHEDRAL_CW}
+    centres = [a for a in mol.GetAtoms() if a.GetChiralTag() in swap]
+    for k, atom in enumerate(centres):
+        if which is None or k in which:
+            atom.SetChiralTag(swap[atom.GetChiralTag()])
+    return Chem.MolToSmiles(mol)
+
+
+def test_stereo_forms_pair_enantiomers_and_keep_diastereomers_apart():
+    from rdkit import Chem
+
+    from retpred.model import stereo_forms
+
+    # one centre: R, S and the racemate (drawn without marks) are one compound
+    s_ibu = "CC(C)Cc1ccc(cc1)[C@H](C)C(=O)O"
+    r_ibu = _invert(s_ibu)
+    assert r_ibu != s_ibu
+    flat = Chem.CanonSmiles("CC(C)Cc1ccc(cc1)C(C)C(=O)O")  # forms of canonical SMILES
+    assert stereo_forms(s_ibu) == stereo_forms(r_ibu) == stereo_forms(flat) == (flat, flat)
+    threonine = "C[C@@H](O)[C@H](N)C(=O)O"  # two centres
+    mirror, diastereomer = _invert(threonine), _invert(threonine, which={0})
+    assert stereo_forms(mirror)[0] == stereo_forms(threonine)[0]
+    assert stereo_forms(diastereomer)[0] != stereo_forms(threonine)[0]
+    assert stereo_forms(diastereomer)[1] == stereo_forms(threonine)[1]
+    # meso-tartaric acid (2R,3S; RDKit's CIP labels) is its own mirror image; the (2R,3R)
+    # acid is not
+    meso = Chem.CanonSmiles("O=C(O)[C@H](O)[C@H](O)C(=O)O")
+    assert _invert(meso) == meso and stereo_forms(meso)[0] == meso
+    rr = Chem.CanonSmiles("O=C(O)[C@H](O)[C@@H](O)C(=O)O")
+    assert _invert(rr) != rr and stereo_forms(_invert(rr))[0] == stereo_forms(rr)[0]
+    # double-bond geometry is not mirrored: E and Z are diastereomers
+    e, z = stereo_forms("C/C=C/c1ccccc1"), stereo_forms("C/C=C\\c1ccccc1")
+    assert e[0] != z[0] and e[1] == z[1]
+
+
+def test_enantiomer_and_unlisted_stereoisomers_take_the_memory_of_the_trained_forms():
+    """A model fitted on a synthetic layout (arbitrary numbers, not chemistry: log kw = 0.6
+    log P + a system offset + planted compound effects) that holds one stereoisomer of a
+    two-centre structure and its unspecified form: the mirror image takes the trained
+    isomer's memory and factors exactly, the untrained diastereomer the mean of the two."""
+    from retpred.column import class_hsm
+    from retpred.model import RetentionModel, SystemContext, featurise
+
+    a = "C[C@H](NC)[C@@H](O)c1ccccc1"  # two centres
+    b = "CC(NC)C(O)c1ccccc1"  # the same constitution, stereo unspecified
+    others = ["c1ccccc1", "Cc1ccccc1", "CCc1ccccc1", "CCCc1ccccc1", "CCCCc1ccccc1",
+              "Oc1ccccc1", "Cc1ccc(O)cc1", "CC(=O)c1ccccc1", "COc1ccccc1", "Clc1ccccc1",
+              "Brc1ccccc1", "c1ccc2ccccc2c1", "Nc1ccccc1", "CC(=O)Nc1ccccc1", "OCc1ccccc1",
+              "CCOC(=O)c1ccccc1", "N#Cc1ccccc1", "O=[N+]([O-])c1ccccc1", "Cc1ccccc1C",
+              "CCCCCCc1ccccc1"]
+    sol = featurise([a, b] + others)
+    hsm = class_hsm("C18")
+    contexts = [SystemContext(organic="acetonitrile", ph=3.0, temperature_c=t, hsm=hsm)
+                for t in (25.0, 30.0, 35.0, 40.0)]
+    comp, sysi = np.meshgrid(np.arange(len(sol)), np.arange(4), indexing="ij")
+    comp, sysi = comp.ravel(), sysi.ravel()
+    effect = np.zeros(len(sol))
+    effect[:2] = [0.4, -0.2]
+    y = 0.6 * sol.logp[comp] + np.array([0.0, 0.1, -0.1, 0.2])[sysi] + effect[comp]
+    model = RetentionModel(reference=hsm, gbm_max_iter=20).fit(sol, comp, contexts, sysi, y)
+    queries = featurise([a, _invert(a), _invert(a, which={0}), b])
+    u = model.memory_offsets(queries, np.arange(4))
+    assert u[0] > 0.05 and u[3] < 0.0  # the planted signs
+    assert u[1] == u[0]
+    np.testing.assert_allclose(u[2], (u[0] + u[3]) / 2, rtol=0, atol=1e-5)
+    f = model.factor_matrix(queries)
+    np.testing.assert_array_equal(f[1], f[0])
+    np.testing.assert_allclose(f[2], (f[0] + f[3]) / 2, rtol=0, atol=1e-5)
+    assert model.known(queries).tolist() == [True, True, False, True]
+    # one centre: trained as one enantiomer, the other and the racemate are the same compound
+    one = featurise([others[-1], "CC(N)c1ccccc1", "C[C@H](N)c1ccccc1", "C[C@@H](N)c1ccccc1"])
+    assert model.known(one).tolist() == [True, False, False, False]
+    one_model = RetentionModel(reference=hsm, gbm_max_iter=20).fit(
+        featurise(others[:-1] + ["C[C@@H](N)c1ccccc1"]), comp[comp >= 2] - 2, contexts,
+        sysi[comp >= 2], y[comp >= 2])
+    u1 = one_model.memory_offsets(one, np.arange(4))
+    assert u1[1] != 0.0 and u1[1] == u1[2] == u1[3]
+    assert one_model.known(one).tolist() == [False, True, True, True]
+    lk = model.retention_parameters(queries, contexts[0])[0]
+    # enantiomers: the same retention (to rounding: their canonical atom orders differ)
+    np.testing.assert_allclose(lk[1], lk[0], rtol=0, atol=1e-9)
