@@ -129,7 +129,8 @@ class Solutes:
     @cached_property
     def memory_keys(self) -> list[str]:
         """Compound-memory key of every row: :func:`compound_key` of the structure's
-        enantiomer-invariant form (:func:`stereo_forms`), hashed once a batch."""
+        memory form (:func:`stereo_forms`: one key for enantiomers and, with a single
+        centre, their racemate), hashed once a batch."""
         return [compound_key(a) for a, _ in self._stereo_forms]
 
     @cached_property
