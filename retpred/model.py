@@ -124,6 +124,8 @@ class Solutes:
 
     @cached_property
     def _stereo_forms(self) -> list[tuple[str, str]]:
+        # from the canonical SMILES, not batch.mols: a batch read back from the structure
+        # cache has no molecules, and its keys must be the same as a fresh batch's
         return [stereo_forms(t) for t in self.batch.smiles]
 
     @cached_property
@@ -626,6 +628,11 @@ class RetentionModel:
         }
 
 
+#: a tetrahedral centre's tag in the mirror image
+_MIRROR_TAG = {Chem.ChiralType.CHI_TETRAHEDRAL_CW: Chem.ChiralType.CHI_TETRAHEDRAL_CCW,
+               Chem.ChiralType.CHI_TETRAHEDRAL_CCW: Chem.ChiralType.CHI_TETRAHEDRAL_CW}
+
+
 def stereo_forms(smiles: str) -> tuple[str, str]:
     """``(memory form, stereo-blind form)`` canonical SMILES of a standardised structure.
 
@@ -646,16 +653,14 @@ def stereo_forms(smiles: str) -> tuple[str, str]:
     if mol is None:
         return smiles, smiles
     flat = Chem.MolToSmiles(mol, isomericSmiles=False)
-    swap = {Chem.ChiralType.CHI_TETRAHEDRAL_CW: Chem.ChiralType.CHI_TETRAHEDRAL_CCW,
-            Chem.ChiralType.CHI_TETRAHEDRAL_CCW: Chem.ChiralType.CHI_TETRAHEDRAL_CW}
-    centres = [atom for atom in mol.GetAtoms() if atom.GetChiralTag() in swap]
+    centres = [atom for atom in mol.GetAtoms() if atom.GetChiralTag() in _MIRROR_TAG]
     if not bonds and len(centres) <= 1:
         return flat, flat
     own = Chem.MolToSmiles(mol)
     if not centres:
         return own, flat
     for atom in centres:
-        atom.SetChiralTag(swap[atom.GetChiralTag()])
+        atom.SetChiralTag(_MIRROR_TAG[atom.GetChiralTag()])
     return min(own, Chem.MolToSmiles(mol)), flat
 
 
