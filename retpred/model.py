@@ -594,8 +594,7 @@ class RetentionModel:
                                                                          strict=True)))
         rows = np.flatnonzero(ok)
         pred_lk = log_kw_obs[rows] - resid[rows] + u[kid[rows]]
-        comps, v = fit_compound_factors(log_kw_obs[rows], pred_lk, kid[rows], which[rows],
-                                        seed=self.random_state)
+        comps, v = fit_compound_factors(log_kw_obs[rows], pred_lk, kid[rows], which[rows])
         self.factors_ = {ukeys[k]: [round(float(a), 5) for a in row]
                          for k, row in zip(comps, v, strict=True)}
         self.skeleton_factors_ = _skeleton_means(ukeys, skeleton, dict(zip(comps, v,
@@ -721,7 +720,7 @@ def _groups(labels: np.ndarray, n: int) -> list[np.ndarray]:
 def fit_compound_factors(
     log_kw_obs: np.ndarray, log_kw_pred: np.ndarray, compound: np.ndarray,
     system: np.ndarray, rank: int = FACTOR_RANK, shrink: float = FACTOR_SHRINK,
-    min_systems: int = FACTOR_MIN_SYSTEMS, n_iter: int = FACTOR_ITERATIONS, seed: int = 0,
+    min_systems: int = FACTOR_MIN_SYSTEMS, n_iter: int = FACTOR_ITERATIONS,
 ) -> tuple[np.ndarray, np.ndarray]:
     """Compound factors of the interaction model ``e_ij = v_i . w_j + noise``.
 
@@ -730,8 +729,11 @@ def fit_compound_factors(
     with ``min_systems`` or more training rows, one per system) and ``w`` (systems) are
     fitted by alternating ridge regressions, ``v_i = (W_i^T W_i + shrink I)^-1 W_i^T e_i``
     and likewise ``w_j`` with penalty 1: a low-rank completion of the compound x system
-    residual matrix. Returns ``(compounds, v)``; ``w`` is not kept (a user's system gets its
-    own from its calibrants).
+    residual matrix. The start is deterministic: ``v`` from the leading ``rank`` singular
+    vectors of that matrix with its missing cells set to 0, ``U_k S_k^1/2`` (the usual
+    spectral start of matrix completion), so the result does not hang on a random draw.
+    Returns ``(compounds, v)``; ``w`` is not kept (a user's system gets its own from its
+    calibrants).
     """
     e = np.asarray(log_kw_obs, dtype=float) - log_kw_pred
     systems, si = np.unique(system, return_inverse=True)
@@ -749,7 +751,15 @@ def fit_compound_factors(
     comps, ci = np.unique(compound, return_inverse=True)
     systems, si = np.unique(system, return_inverse=True)
     c_rows, s_rows = _groups(ci, comps.size), _groups(si, systems.size)
-    v = 0.1 * np.random.default_rng(seed).standard_normal((comps.size, rank))
+    cells = np.zeros((comps.size, systems.size))
+    np.add.at(cells, (ci, si), e)
+    counts = np.zeros_like(cells)
+    np.add.at(counts, (ci, si), 1.0)
+    cells = np.divide(cells, counts, out=cells, where=counts > 0)
+    left, singular, _ = np.linalg.svd(cells, full_matrices=False)
+    v = np.zeros((comps.size, rank))
+    k = min(rank, singular.size)
+    v[:, :k] = left[:, :k] * np.sqrt(singular[:k])
     w = np.zeros((systems.size, rank))
     for _ in range(n_iter):
         for j, rows in enumerate(s_rows):

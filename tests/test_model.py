@@ -211,6 +211,40 @@ def test_compound_factors_complete_a_planted_low_rank_layout():
     np.testing.assert_allclose(v[5:] @ w_hat, e_new[5:], atol=1e-3)
 
 
+def test_compound_factors_start_from_the_spectral_solution_of_a_sparse_layout():
+    """The alternating fit starts from the leading singular vectors of the zero-filled
+    residual matrix: the spectral start of matrix completion (Keshavan, Montanari and Oh
+    2010, from memory; the SVD as in any numerical linear algebra text). On a planted rank-3
+    layout of 120 compounds x 30 systems with half the cells measured and a little
+    noise, one alternating sweep from that start already carries the planted interaction: a
+    system's loadings refitted on the factors reproduce it with correlation above 0.99,
+    as many sweeps do. (A random start needs several sweeps: 0.76-0.94 after one on these
+    layouts.) The numbers are arbitrary, not chemistry."""
+    from retpred.model import fit_compound_factors, ridge_solve
+
+    n_c, n_s = 120, 30
+    for seed in range(3):
+        rng = np.random.default_rng(seed)
+        pred_c = rng.uniform(0.5, 4.0, n_c)
+        basis = np.column_stack([np.ones(n_c), pred_c])
+        v_true = rng.normal(0, 1, (n_c, 3))
+        v_true -= basis @ np.linalg.lstsq(basis, v_true, rcond=None)[0]
+        w_true = rng.normal(0, 0.3, (n_s, 3))
+        comp, sysi = np.meshgrid(np.arange(n_c), np.arange(n_s), indexing="ij")
+        measured = rng.random(comp.shape) < 0.5
+        comp, sysi = comp[measured], sysi[measured]
+        planted = np.sum(v_true[comp] * w_true[sysi], axis=1)
+        pred = pred_c[comp]
+        obs = pred + 0.1 * sysi / n_s + planted + rng.normal(0, 0.02, comp.size)
+        for n_iter in (1, 15):
+            comps, v = fit_compound_factors(obs, pred, comp, sysi, n_iter=n_iter)
+            assert comps.tolist() == list(range(n_c))
+            w = np.array([ridge_solve(v[comp[sysi == j]], planted[sysi == j], 1e-6)
+                          for j in range(n_s)])
+            rebuilt = np.sum(v[comp] * w[sysi], axis=1)
+            assert np.corrcoef(rebuilt, planted)[0, 1] > 0.99, (seed, n_iter)
+
+
 @pytest.fixture(scope="module")
 def shared_compounds_case(open_data, small_training_set):
     """The small set plus three open-data systems for training, and two others that share
