@@ -302,11 +302,20 @@ def evaluate(ts: TrainingSet, fp: FoldPredictions, n_draws: int = 5, seed: int =
 
 
 def summarise(table: pd.DataFrame) -> dict:
-    """Medians over left-out systems."""
+    """Medians over left-out systems (and, with a ``group`` column, the median over source
+    publications of each source's median system: ``*_over_sources``)."""
     cols = [c for c in table.columns if c.startswith(("zero_", "cal_", "logp_cal_", "gbm_"))]
     out = {c: _nan_safe(np.nanmedian, table[c]) for c in cols
            if not c.endswith(("_hits", "_n"))}
     out["n_systems"] = int(len(table))
+    if "group" in table:
+        # a source publication with many systems weighs as many systems in the medians
+        # above; the median over sources (each its median system) shows how much
+        by_source = table.groupby("group")
+        out["n_sources"] = int(by_source.ngroups)
+        for c in ("zero_medae_pct", "cal_medae_pct", "logp_cal_medae_pct"):
+            if c in table:
+                out[f"{c}_over_sources"] = _nan_safe(np.nanmedian, by_source[c].median())
     if "zero_interval_hits" in table:
         out["zero_interval_coverage_pooled"] = float(
             table["zero_interval_hits"].sum() / table["zero_n"].sum())

@@ -25,6 +25,7 @@ from retpred.evaluation import (
     ph_shift_agreement,
     rescore_pairs,
     residual_quantiles,
+    summarise,
     system_metrics,
 )
 
@@ -57,6 +58,25 @@ def test_order_accuracy_matches_brute_force():
             total += 1
             good += np.sign(obs[i] - obs[j]) == np.sign(pred[i] - pred[j])
     assert order_accuracy(obs, pred) == pytest.approx(good / total)
+
+
+def test_summary_gives_medians_over_systems_and_over_sources():
+    """Hand values: source A has three systems at 1, 2 and 9 %, source B two at 5 and 7 %.
+    Over the five systems the median is 5 %; over sources it is the median of A's median
+    (2) and B's (6), 4 %. A source with many systems weighs as many systems in the first
+    and once in the second (retention-physics.md section 8 reports per system)."""
+    import pandas as pd
+
+    table = pd.DataFrame({"group": ["A", "A", "A", "B", "B"],
+                          "cal_medae_pct": [1.0, 2.0, 9.0, 5.0, 7.0],
+                          "zero_medae_pct": [3.0, 4.0, 5.0, np.nan, 8.0]})
+    out = summarise(table)
+    assert out["n_systems"] == 5 and out["n_sources"] == 2
+    assert out["cal_medae_pct"] == pytest.approx(5.0)
+    assert out["cal_medae_pct_over_sources"] == pytest.approx(4.0)
+    # B's zero-shot median skips its NaN system: median(4, 8) = 6
+    assert out["zero_medae_pct_over_sources"] == pytest.approx(6.0)
+    assert "logp_cal_medae_pct_over_sources" not in out
 
 
 def test_system_metrics_against_scipy_and_hand_values():
