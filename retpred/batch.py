@@ -48,7 +48,13 @@ import pandas as pd
 
 from retpred.cache import SDF_KEY_PREFIX, FeatureCache, Known, featurise_known, open_cache
 from retpred.errors import InputError
-from retpred.io import AnalyteChunk, atomic_output, check_output_target, iter_analytes
+from retpred.io import (
+    AnalyteChunk,
+    atomic_output,
+    check_output_target,
+    iter_analytes,
+    write_csv_rows,
+)
 from retpred.peaks import (
     any_coelution_probability,
     recalibrate_risk,
@@ -637,8 +643,7 @@ def stream_predict(
                     _fill_pairs(part, start, pairs, names)
                     part = part.reindex(columns=final_columns)
                     if dest is not None:
-                        part.to_csv(dest, index=False, header=start == 0, float_format="%.4f",
-                                    lineterminator="\n")
+                        write_csv_rows(part, dest, header=start == 0)
                     eo = pairs.elution_order[start:start + size]
                     sel = (eo > 0) & (eo <= preview_rows)
                     if sel.any():

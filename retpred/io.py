@@ -36,6 +36,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import IO, Any
 
+import numpy as np
 import pandas as pd
 
 from retpred.errors import InputError
@@ -677,3 +678,21 @@ def atomic_output(path, *, force: bool = False, inputs: Sequence = (),
             yield fh
             fh.flush()
             os.fsync(fh.fileno())
+
+
+#: decimals of every float in a CSV this tool writes
+CSV_DECIMALS = 4
+
+
+def write_csv_rows(table: pd.DataFrame, fh: IO[str], header: bool = True) -> None:
+    """Write ``table`` to the open handle ``fh`` with floats to ``CSV_DECIMALS`` places; a
+    value that rounds to zero is written ``0.0000``, never ``-0.0000``."""
+    floats = table.select_dtypes(include="floating").columns
+    if len(floats):
+        values = table[floats].to_numpy()
+        tiny_negative = np.signbit(values) & (values > -0.5 * 10.0**-CSV_DECIMALS)
+        if tiny_negative.any():
+            table = table.copy()
+            table[floats] = np.where(tiny_negative, 0.0, values)
+    table.to_csv(fh, index=False, header=header, float_format=f"%.{CSV_DECIMALS}f",
+                 lineterminator="\n")

@@ -10,7 +10,7 @@ import pandas as pd
 from rich.console import Console
 from rich.table import Table
 
-from retpred.io import atomic_output, atomic_output_path
+from retpred.io import atomic_output, atomic_output_path, write_csv_rows
 from retpred.peaks import simulate_chromatogram
 
 CAUTION = (
@@ -94,7 +94,7 @@ def print_report(table: pd.DataFrame, title: str, notes: list[str], console: Con
 
 def write_csv(table: pd.DataFrame, path: Path, *, force: bool, inputs=()) -> None:
     with atomic_output(path, force=force, inputs=inputs) as fh:
-        table.to_csv(fh, index=False, float_format="%.4f", lineterminator="\n")
+        write_csv_rows(table, fh)
 
 
 def plot_chromatogram(

@@ -18,6 +18,8 @@ import io
 import os
 import tracemalloc
 
+import numpy as np
+import pandas as pd
 import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
@@ -32,6 +34,7 @@ from retpred.io import (
     iter_analytes,
     read_calibrants,
     read_training_data,
+    write_csv_rows,
 )
 
 SETTINGS = settings(max_examples=120, deadline=None,
@@ -542,3 +545,27 @@ def test_latin1_round_trip(tmp_path, names):
     body = "name;smiles\r\n" + "".join(f"{n};C\r\n" for n in names)
     got = read_all(write(tmp_path, "l1.csv", body.encode("latin-1")))
     assert got.name == [n.strip() or f"row {i + 1}" for i, n in enumerate(names)]
+
+
+@SETTINGS
+@given(st.lists(st.one_of(st.floats(min_value=-1e6, max_value=1e6), st.just(float("nan"))),
+                min_size=1, max_size=20))
+def test_csv_floats_round_to_four_places_and_never_read_minus_zero(values):
+    """A neutral analyte's mean charge (for example -1e-12 from summing species fractions)
+    must read 0.0000 in the record, not -0.0000; every other value is the nearest 4-decimal
+    number (IEEE 754 signed zero; Python's %-formatting rounds the exact binary value)."""
+    buf = io.StringIO()
+    write_csv_rows(pd.DataFrame({"charge": values, "name": "x"}), buf)
+    cells = [row[0] for row in csv.reader(io.StringIO(buf.getvalue()))][1:]
+    for v, cell in zip(values, cells, strict=True):
+        if np.isnan(v):
+            assert cell == ""
+            continue
+        assert cell != "-0.0000"
+        assert abs(float(cell) - v) <= 0.5e-4 + 1e-9 * abs(v)
+
+
+def test_csv_writes_plain_zero_for_signed_zeros():
+    buf = io.StringIO()
+    write_csv_rows(pd.DataFrame({"charge": [-0.0, -4e-5, -5e-4, 0.0]}), buf)
+    assert buf.getvalue().split() == ["charge", "0.0000", "0.0000", "-0.0005", "0.0000"]
