@@ -2,10 +2,11 @@
 
 What is stored, per input SMILES text (the exact field as read): the standardisation result
 (canonical parent SMILES, status, changes, usable), the descriptor row, the count
-fingerprint and the ionisable sites (pKa, kind, group) - everything
-:func:`retpred.model.featurise` computes, i.e. all the RDKit work (about 0.9 ms per
-structure, measured; a hit costs a few microseconds). Method, model and calibration are not
-part of the entry, so one cache serves every method and model.
+fingerprint, the ionisable sites (pKa, kind, group) and the two compound-memory keys
+(:attr:`retpred.model.Solutes.memory_keys`: canonical SMILES of stereo forms, hashed) -
+everything :func:`retpred.model.featurise` computes and the keys, i.e. all the RDKit work
+(about 0.9 ms per structure, measured; a hit costs a few microseconds). Method, model and
+calibration are not part of the entry, so one cache serves every method and model.
 
 Store: one SQLite file (stdlib ``sqlite3``, WAL journal) per cache version in the cache
 directory, ``features-<16 hex>.sqlite``. The version string (:func:`cache_version`) holds the
@@ -50,11 +51,18 @@ import numpy as np
 
 from retpred import __version__
 from retpred.chemistry import DESCRIPTOR_NAMES, SiteTable
-from retpred.model import N_BITS, Solutes, featurise
+from retpred.model import (
+    N_BITS,
+    Solutes,
+    compound_key,
+    featurise,
+    stereo_forms,
+    stereo_forms_of,
+)
 from retpred.structures import StandardisedBatch
 
 #: Layout of an entry; bump when the stored fields change.
-CACHE_FORMAT = 1
+CACHE_FORMAT = 2
 #: Environment variable naming the cache directory when none is given.
 CACHE_ENV = "RETPRED_CACHE_DIR"
 
@@ -78,10 +86,11 @@ def _code_bytes() -> bytes:
             parts.append(Path(mod.__file__).read_bytes())
         except (OSError, TypeError):
             parts.append(f"{mod.__name__} source unavailable".encode())
-    try:
-        parts.append(inspect.getsource(featurise).encode())
-    except (OSError, TypeError):
-        parts.append(b"featurise source unavailable")
+    for fn in (featurise, stereo_forms, stereo_forms_of, compound_key):
+        try:
+            parts.append(inspect.getsource(fn).encode())
+        except (OSError, TypeError):
+            parts.append(f"{fn.__name__} source unavailable".encode())
     return b"\0".join(parts)
 
 
@@ -117,13 +126,15 @@ def resolve_cache_dir(cache_dir=None) -> Path | None:
 # Entries
 # ---------------------------------------------------------------------------------------------
 
-#: (key, smiles, status, changes, usable, groups, descriptors, fingerprint, pka, kind, crc)
+#: (key, smiles, status, changes, usable, groups, descriptors, fingerprint, pka, kind,
+#: memory_key, skeleton_key, crc)
 Record = tuple
 
 
 def _crc(smiles: str, status: str, changes: str, usable: int, groups: str, desc: bytes,
-         fp: bytes, pka: bytes, kind: bytes) -> int:
-    text = _SEP.join((smiles, status, changes, str(usable), groups)).encode("utf-8")
+         fp: bytes, pka: bytes, kind: bytes, memory_key: str, skeleton_key: str) -> int:
+    text = _SEP.join((smiles, status, changes, str(usable), groups, memory_key,
+                      skeleton_key)).encode("utf-8")
     return zlib.crc32(kind, zlib.crc32(pka, zlib.crc32(fp, zlib.crc32(desc, zlib.crc32(text)))))
 
 
@@ -143,15 +154,18 @@ def encode_records(keys: Sequence[str], solutes: Solutes) -> list[Record]:
         p = np.ascontiguousarray(sites.pka[i, :c], dtype=np.float64).tobytes()
         k = np.ascontiguousarray(sites.kind[i, :c], dtype=np.int8).tobytes()
         u = int(bool(b.usable[i]))
-        out.append((key, b.smiles[i], b.status[i], b.changes[i], u, groups, d, f, p, k,
-                    _crc(b.smiles[i], b.status[i], b.changes[i], u, groups, d, f, p, k)))
+        mk, sk = solutes.memory_keys[i], solutes.skeleton_keys[i]
+        out.append((key, b.smiles[i], b.status[i], b.changes[i], u, groups, d, f, p, k, mk,
+                    sk, _crc(b.smiles[i], b.status[i], b.changes[i], u, groups, d, f, p, k,
+                             mk, sk)))
     return out
 
 
 def _valid(row) -> bool:
-    _, smi, status, changes, usable, groups, d, f, p, k, crc = row
+    _, smi, status, changes, usable, groups, d, f, p, k, mk, sk, crc = row
     if not (isinstance(smi, str) and isinstance(status, str) and isinstance(changes, str)
-            and isinstance(groups, str) and usable in (0, 1)):
+            and isinstance(groups, str) and usable in (0, 1) and isinstance(mk, str)
+            and isinstance(sk, str)):
         return False
     if not all(isinstance(x, bytes) for x in (d, f, p, k)):
         return False
@@ -160,7 +174,7 @@ def _valid(row) -> bool:
         return False
     if (len(groups.split(_SEP)) if groups else 0) != c:
         return False
-    return crc == _crc(smi, status, changes, usable, groups, d, f, p, k)
+    return crc == _crc(smi, status, changes, usable, groups, d, f, p, k, mk, sk)
 
 
 def decode_records(rows: Sequence) -> Solutes:
@@ -185,7 +199,8 @@ def decode_records(rows: Sequence) -> Solutes:
         status=[r[2] for r in rows], changes=[r[3] for r in rows],
     )
     return Solutes(batch=batch, descriptors=desc.copy(), fingerprints=fps.copy(),
-                   sites=SiteTable(pka=pka, kind=kind, group=groups))
+                   sites=SiteTable(pka=pka, kind=kind, group=groups),
+                   known_keys=([r[10] for r in rows], [r[11] for r in rows]))
 
 
 def combine_solutes(n: int, parts: Sequence[tuple[np.ndarray, Solutes]]) -> Solutes:
@@ -204,6 +219,8 @@ def combine_solutes(n: int, parts: Sequence[tuple[np.ndarray, Solutes]]) -> Solu
     pka = np.full((n, m), np.nan)
     kind = np.zeros((n, m), dtype=np.int8)
     groups: list[list[str]] = [[] for _ in range(n)]
+    mkeys = [""] * n
+    skeys = [""] * n
     for idx, p in parts:
         idx = np.asarray(idx, dtype=np.int64)
         b = p.batch
@@ -211,6 +228,7 @@ def combine_solutes(n: int, parts: Sequence[tuple[np.ndarray, Solutes]]) -> Solu
             mols[i], smiles[i], status[i], changes[i] = (b.mols[j], b.smiles[j], b.status[j],
                                                          b.changes[j])
             groups[i] = p.sites.group[j]
+            mkeys[i], skeys[i] = p.memory_keys[j], p.skeleton_keys[j]
         usable[idx] = b.usable
         desc[idx] = p.descriptors
         fps[idx] = p.fingerprints
@@ -220,7 +238,8 @@ def combine_solutes(n: int, parts: Sequence[tuple[np.ndarray, Solutes]]) -> Solu
     batch = StandardisedBatch(mols=mols, smiles=smiles, usable=usable, status=status,
                               changes=changes)
     return Solutes(batch=batch, descriptors=desc, fingerprints=fps,
-                   sites=SiteTable(pka=pka, kind=kind, group=groups))
+                   sites=SiteTable(pka=pka, kind=kind, group=groups),
+                   known_keys=(mkeys, skeys))
 
 
 @dataclass
@@ -306,7 +325,8 @@ class FeatureCache:
             db.execute(
                 "CREATE TABLE IF NOT EXISTS features (key TEXT PRIMARY KEY, smiles TEXT, "
                 "status TEXT, changes TEXT, usable INTEGER, groups TEXT, descriptors BLOB, "
-                "fingerprint BLOB, pka BLOB, kind BLOB, crc INTEGER)")
+                "fingerprint BLOB, pka BLOB, kind BLOB, memory_key TEXT, skeleton_key TEXT, "
+                "crc INTEGER)")
             row = db.execute("SELECT value FROM meta WHERE name = 'version'").fetchone()
             if row is None:
                 db.execute("INSERT OR IGNORE INTO meta VALUES ('version', ?)", (self.version,))
@@ -364,7 +384,8 @@ class FeatureCache:
             for s in range(0, len(wanted), _BATCH):
                 part = wanted[s:s + _BATCH]
                 q = ("SELECT key, smiles, status, changes, usable, groups, descriptors, "
-                     "fingerprint, pka, kind, crc FROM features WHERE key IN ("
+                     "fingerprint, pka, kind, memory_key, skeleton_key, crc FROM features "
+                     "WHERE key IN ("
                      + ",".join("?" * len(part)) + ")")
                 for row in self._db.execute(q, part):
                     if _valid(row):
@@ -389,7 +410,7 @@ class FeatureCache:
             with self._db:
                 self._db.execute("BEGIN")
                 self._db.executemany(
-                    "INSERT OR REPLACE INTO features VALUES (?,?,?,?,?,?,?,?,?,?,?)", unique)
+                    "INSERT OR REPLACE INTO features VALUES (?,?,?,?,?,?,?,?,?,?,?,?,?)", unique)
         except sqlite3.Error as exc:
             self._failed(exc, "writing")
             return

@@ -106,6 +106,9 @@ class Solutes:
     descriptors: np.ndarray
     fingerprints: np.ndarray
     sites: SiteTable
+    #: (memory keys, stereo-blind keys) of the rows when already known (read back from the
+    #: feature cache); otherwise computed from the SMILES on first use
+    known_keys: tuple[list[str], list[str]] | None = None
 
     @property
     def usable(self) -> np.ndarray:
@@ -123,22 +126,27 @@ class Solutes:
         return self.descriptors[:, _d("mw")]
 
     @cached_property
-    def _stereo_forms(self) -> list[tuple[str, str]]:
-        # from the canonical SMILES, not batch.mols: a batch read back from the structure
-        # cache has no molecules, and its keys must be the same as a fresh batch's
-        return [stereo_forms(t) for t in self.batch.smiles]
+    def _keys(self) -> tuple[list[str], list[str]]:
+        if self.known_keys is not None:
+            return self.known_keys
+        # from the standardised molecule where the batch has it (the SMILES is written from
+        # it, and re-reading that SMILES gives the same forms: tests/test_model.py); a
+        # batch read back from the feature cache carries its keys
+        forms = [stereo_forms(t) if m is None else stereo_forms_of(m, t)
+                 for m, t in zip(self.batch.mols, self.batch.smiles, strict=True)]
+        return [compound_key(a) for a, _ in forms], [compound_key(b) for _, b in forms]
 
-    @cached_property
+    @property
     def memory_keys(self) -> list[str]:
         """Compound-memory key of every row: :func:`compound_key` of the structure's
         memory form (:func:`stereo_forms`: one key for enantiomers and, with a single
-        centre, their racemate), hashed once a batch."""
-        return [compound_key(a) for a, _ in self._stereo_forms]
+        centre, their racemate), computed once a batch."""
+        return self._keys[0]
 
-    @cached_property
+    @property
     def skeleton_keys(self) -> list[str]:
         """:func:`compound_key` of each row's stereo-blind form (the memory's fallback)."""
-        return [compound_key(b) for _, b in self._stereo_forms]
+        return self._keys[1]
 
 
 def featurise(smiles: Sequence[str] | None = None, mols: Sequence | None = None) -> Solutes:
@@ -645,22 +653,35 @@ def stereo_forms(smiles: str) -> tuple[str, str]:
     then the fallback key for a stereoisomer the training data do not hold. A structure
     without stereo marks is its own form twice; one RDKit cannot read is returned as is.
     """
-    bonds = "/" in smiles or "\\" in smiles
-    if "@" not in smiles and not bonds:
+    if not _has_stereo_marks(smiles):
         return smiles, smiles
     mol = Chem.MolFromSmiles(smiles)
     if mol is None:
         return smiles, smiles
+    return stereo_forms_of(mol, Chem.MolToSmiles(mol))
+
+
+def _has_stereo_marks(smiles: str) -> bool:
+    return "@" in smiles or "/" in smiles or "\\" in smiles
+
+
+def stereo_forms_of(mol: Chem.Mol, smiles: str) -> tuple[str, str]:
+    """:func:`stereo_forms` of ``smiles``, the canonical SMILES written from ``mol``,
+    without reading it again (``mol`` is not changed)."""
+    if not _has_stereo_marks(smiles):
+        return smiles, smiles
     flat = Chem.MolToSmiles(mol, isomericSmiles=False)
-    centres = [atom for atom in mol.GetAtoms() if atom.GetChiralTag() in _MIRROR_TAG]
+    centres = [atom.GetIdx() for atom in mol.GetAtoms() if atom.GetChiralTag() in _MIRROR_TAG]
+    bonds = "/" in smiles or "\\" in smiles
     if not bonds and len(centres) <= 1:
         return flat, flat
-    own = Chem.MolToSmiles(mol)
     if not centres:
-        return own, flat
-    for atom in centres:
+        return smiles, flat
+    mirror = Chem.Mol(mol)
+    for i in centres:
+        atom = mirror.GetAtomWithIdx(i)
         atom.SetChiralTag(_MIRROR_TAG[atom.GetChiralTag()])
-    return min(own, Chem.MolToSmiles(mol)), flat
+    return min(smiles, Chem.MolToSmiles(mirror)), flat
 
 
 def compound_key(smiles: str) -> str:

@@ -19,6 +19,7 @@ import pandas as pd
 import pytest
 
 import retpred.cache as rc
+import retpred.model
 from retpred.batch import stream_predict
 from retpred.cache import FeatureCache, cache_version, combine_solutes, featurise_known
 from retpred.model import featurise
@@ -63,7 +64,25 @@ def _run(prep, library, out, cache_dir, **kw):
 
 def test_cold_and_warm_runs_are_byte_identical(prep, library, uncached, tmp_path, monkeypatch):
     cache = tmp_path / "cache"
+    # the compound-memory keys parse stereo-marked SMILES again: cached with the features
+    stereo_parsed = []
+    real_forms, real_forms_of = retpred.model.stereo_forms, retpred.model.stereo_forms_of
+
+    def counting_forms(smiles):
+        if "@" in smiles or "/" in smiles or "\\" in smiles:
+            stereo_parsed.append(smiles)
+        return real_forms(smiles)
+
+    def counting_forms_of(mol, smiles):
+        if "@" in smiles or "/" in smiles or "\\" in smiles:
+            stereo_parsed.append(smiles)
+        return real_forms_of(mol, smiles)
+
+    monkeypatch.setattr(retpred.model, "stereo_forms", counting_forms)
+    monkeypatch.setattr(retpred.model, "stereo_forms_of", counting_forms_of)
     cold, cold_bytes = _run(prep, library, tmp_path / "cold.csv", cache)
+    assert len(stereo_parsed) > 10  # the library has stereo-marked structures
+    stereo_parsed.clear()
     assert cold_bytes == uncached
     # a chunk is looked up after the chunks before it are stored: the ten repeats (all in
     # a later chunk than their first occurrence) already hit in the cold run
@@ -82,6 +101,7 @@ def test_cold_and_warm_runs_are_byte_identical(prep, library, uncached, tmp_path
     assert warm_bytes == uncached
     assert (warm.cache_hits, warm.cache_misses) == (N_TEXT, 0)
     assert seen == [""]
+    assert stereo_parsed == []
     with sqlite3.connect(warm.cache_path) as db:
         assert db.execute("SELECT COUNT(*) FROM features").fetchone()[0] == N_UNIQUE
 
@@ -113,6 +133,9 @@ def test_entries_round_trip_bit_for_bit(open_smiles):
     assert back.batch.status == whole.batch.status
     assert back.batch.changes == whole.batch.changes
     np.testing.assert_array_equal(back.usable, whole.usable)
+    assert back.known_keys is not None
+    assert back.memory_keys == whole.memory_keys
+    assert back.skeleton_keys == whole.skeleton_keys
     known = rc.Known(idx=np.arange(0, len(texts), 3),
                      solutes=rc.decode_records(rows[::3]))
     mixed, records = featurise_known(texts, known, record=True)
@@ -120,6 +143,8 @@ def test_entries_round_trip_bit_for_bit(open_smiles):
     np.testing.assert_array_equal(mixed.sites.pka, whole.sites.pka)
     np.testing.assert_array_equal(mixed.sites.kind, whole.sites.kind)
     np.testing.assert_array_equal(mixed.descriptors, whole.descriptors)
+    assert mixed.memory_keys == whole.memory_keys
+    assert mixed.skeleton_keys == whole.skeleton_keys
     parts = combine_solutes(2, [(np.array([1]), featurise(["CCO"])),
                                 (np.array([0]), featurise(["NCCCCN"]))])
     assert parts.batch.smiles == ["NCCCCN", "CCO"]

@@ -494,3 +494,22 @@ def test_enantiomer_and_unlisted_stereoisomers_take_the_memory_of_the_trained_fo
     lk = model.retention_parameters(queries, contexts[0])[0]
     # enantiomers: the same retention (to rounding: their canonical atom orders differ)
     np.testing.assert_allclose(lk[1], lk[0], rtol=0, atol=1e-9)
+
+
+def test_stereo_forms_from_the_standardised_molecule_match_those_of_its_smiles():
+    """A fresh batch takes the forms from the molecule it standardised (no second parse);
+    they must be what reading the batch's canonical SMILES again gives, or a structure
+    would be keyed differently with and without the feature cache. Structures: the test
+    above's, a steroid (several centres), a double-bond geometry with a centre, and plain
+    ones (RDKit canonical SMILES of each is written by the standardiser)."""
+    from retpred.model import stereo_forms, stereo_forms_of
+    from retpred.structures import standardise_smiles
+
+    batch = standardise_smiles([
+        "CC(C)Cc1ccc(cc1)[C@H](C)C(=O)O", "C[C@@H](O)[C@H](N)C(=O)O",
+        "O=C(O)[C@H](O)[C@H](O)C(=O)O", "O=C(O)[C@H](O)[C@@H](O)C(=O)O",
+        "C[C@]12CC[C@H]3[C@@H](CCc4cc(O)ccc43)[C@@H]1CC[C@@H]2O", "C/C=C/c1ccccc1",
+        "C/C=C\\[C@H](N)C(=O)O", "c1ccccc1O", "CCN(CC)CC",
+    ])
+    for mol, smiles in zip(batch.mols, batch.smiles, strict=True):
+        assert stereo_forms_of(mol, smiles) == stereo_forms(smiles), smiles
