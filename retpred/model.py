@@ -107,7 +107,7 @@ class Solutes:
     fingerprints: np.ndarray
     sites: SiteTable
     #: (memory keys, stereo-blind keys) of the rows when already known (read back from the
-    #: feature cache); otherwise computed from the SMILES on first use
+    #: feature cache); otherwise computed on first use, from each standardised molecule
     known_keys: tuple[list[str], list[str]] | None = None
 
     @property
