@@ -21,8 +21,29 @@ from retpred.opendata import OpenSystem, load_compounds, load_systems
 #: Observed log kw outside this window are treated as data errors (k at phi=0 of 10^-1 ..
 #: 10^9 covers every small molecule on reversed phase; common practice).
 LOG_KW_WINDOW = (-1.0, 9.0)
-#: Rows with k below this at elution carry almost no information (eluted near t0).
+#: Rows with k below this at elution carry almost no information (eluted near t0) beyond an
+#: upper bound on their log kw (:class:`VoidRows`).
 MIN_RT_OVER_T0 = 1.15
+#: Rows eluting before this fraction of t0 are data errors (an unretained solute elutes at t0),
+#: not void rows.
+VOID_MIN_RT_OVER_T0 = 0.8
+
+
+@dataclass
+class VoidRows:
+    """Rows that eluted at or near t0 (``VOID_MIN_RT_OVER_T0`` .. ``MIN_RT_OVER_T0`` times t0):
+    only an upper bound on their ``log kw`` is known, ``bound_log_kw``, the value that elutes
+    at ``MIN_RT_OVER_T0`` t0 on the row's system. Dropping them would leave the model with
+    the polar compounds only where they happened to be retained (a truncated sample), and it
+    then predicts them retained where they are not (:func:`fit_model`)."""
+
+    solute_idx: np.ndarray
+    system_idx: np.ndarray
+    bound_log_kw: np.ndarray
+
+    def take(self, mask: np.ndarray) -> VoidRows:
+        return VoidRows(solute_idx=self.solute_idx[mask], system_idx=self.system_idx[mask],
+                        bound_log_kw=self.bound_log_kw[mask])
 
 
 @dataclass
@@ -38,6 +59,8 @@ class TrainingSet:
     log_kw: np.ndarray
     s: np.ndarray
     smiles: list[str]
+    #: rows eluted at or near t0 (upper bounds), None when not collected
+    void: VoidRows | None = None
 
     @property
     def groups(self) -> np.ndarray:
@@ -54,11 +77,15 @@ class TrainingSet:
         raise ValueError(f"unknown split '{split}' (source or dataset)")
 
     def subset(self, mask: np.ndarray) -> TrainingSet:
+        """The rows ``mask``; void rows follow their system (kept if any of its rows is)."""
+        void = self.void
+        if void is not None:
+            void = void.take(np.isin(void.system_idx, np.unique(self.system_idx[mask])))
         return TrainingSet(
             solutes=self.solutes, systems=self.systems, contexts=self.contexts,
             solute_idx=self.solute_idx[mask], system_idx=self.system_idx[mask],
             rt_min=self.rt_min[mask], log_kw=self.log_kw[mask], s=self.s[mask],
-            smiles=self.smiles,
+            smiles=self.smiles, void=void,
         )
 
 
@@ -75,13 +102,15 @@ def build_training_set(
     systems: Sequence[OpenSystem], rows: pd.DataFrame, solutes: Solutes | None = None,
     smiles_index: dict[str, int] | None = None,
 ) -> TrainingSet:
-    """Invert every observed time of ``rows`` (dataset, smiles, rt_min) into log kw."""
+    """Invert every observed time of ``rows`` (dataset, smiles, rt_min) into log kw; rows
+    eluted at or near t0 become :class:`VoidRows` (upper bounds)."""
     if solutes is None:
         uniq = list(dict.fromkeys(rows["smiles"].tolist()))
         solutes = featurise(uniq)
         smiles_index = {s: i for i, s in enumerate(uniq)}
     pos = {s.dataset: i for i, s in enumerate(systems)}
     sol_all, sys_all, rt_all, lk_all, s_all = [], [], [], [], []
+    void_sol, void_sys, void_bound = [], [], []
     for ds, grp in rows.groupby("dataset", sort=True):
         if ds not in pos:
             continue
@@ -90,7 +119,16 @@ def build_training_set(
         sidx = np.array([smiles_index[s] for s in grp["smiles"]])
         use = solutes.usable[sidx]
         rt = grp["rt_min"].to_numpy(dtype=float)
-        use &= rt > MIN_RT_OVER_T0 * prog.dead_time_min
+        t_void = MIN_RT_OVER_T0 * prog.dead_time_min
+        near = use & (rt <= t_void) & (rt > VOID_MIN_RT_OVER_T0 * prog.dead_time_min)
+        if near.any():
+            bound = log_kw_from_rt(np.full(near.sum(), t_void),
+                                   s_parameter(solutes.mw[sidx[near]]), prog)
+            ok = np.isfinite(bound)
+            void_sol.append(sidx[near][ok])
+            void_sys.append(np.full(ok.sum(), sysi))
+            void_bound.append(bound[ok])
+        use &= rt > t_void
         if not use.any():
             continue
         sidx, rt = sidx[use], rt[use]
@@ -112,6 +150,11 @@ def build_training_set(
         log_kw=np.concatenate(lk_all),
         s=np.concatenate(s_all),
         smiles=list(smiles_index),
+        void=VoidRows(
+            solute_idx=np.concatenate(void_sol) if void_sol else np.zeros(0, dtype=int),
+            system_idx=np.concatenate(void_sys) if void_sys else np.zeros(0, dtype=int),
+            bound_log_kw=np.concatenate(void_bound) if void_bound else np.zeros(0),
+        ),
     )
 
 
@@ -128,16 +171,37 @@ def fit_model(ts: TrainingSet, mask: np.ndarray | None = None, **params) -> Rete
 
     Rows are weighted so that every system counts about as much as sqrt of its size
     (a 7,000-compound system must not drown the 30-compound ones).
+
+    Void rows (:class:`VoidRows`, censored from above at ``b``) enter by one step of
+    imputation: a first model fitted without them predicts ``mu`` for each, the row takes
+    ``min(mu, b)`` as its target (a compound predicted retained beyond the bound is pulled
+    down to it; one already predicted below it keeps its prediction, no information), and
+    the model is fitted again on every row. This is the zero-noise limit of the E step
+    of a censored-regression (Tobit) fit; see DEVELOPERS.md, "Void rows".
     """
-    sub = ts if mask is None else ts.subset(mask)
-    counts = np.bincount(sub.system_idx, minlength=len(ts.systems)).astype(float)
-    w = 1.0 / np.sqrt(np.maximum(counts[sub.system_idx], 1.0))
-    w *= len(w) / w.sum()
-    ref = class_hsm("C18")
-    model = RetentionModel(reference=ref, **params)
-    return model.fit(
-        ts.solutes, sub.solute_idx, ts.contexts, sub.system_idx, sub.log_kw, sample_weight=w
+    sub = ts.subset(np.ones(ts.rt_min.size, dtype=bool) if mask is None else mask)
+    model = _fit_rows(ts, sub.solute_idx, sub.system_idx, sub.log_kw, params)
+    void = sub.void
+    if void is None or void.solute_idx.size == 0:
+        return model
+    first = model.retention_parameters(ts.solutes, ts.contexts, which=void.system_idx,
+                                       idx=void.solute_idx)[0]
+    target = np.minimum(first, void.bound_log_kw)
+    ok = np.isfinite(target)
+    return _fit_rows(
+        ts, np.concatenate([sub.solute_idx, void.solute_idx[ok]]),
+        np.concatenate([sub.system_idx, void.system_idx[ok]]),
+        np.concatenate([sub.log_kw, target[ok]]), params,
     )
+
+
+def _fit_rows(ts: TrainingSet, solute_idx: np.ndarray, system_idx: np.ndarray,
+              log_kw: np.ndarray, params: dict) -> RetentionModel:
+    counts = np.bincount(system_idx, minlength=len(ts.systems)).astype(float)
+    w = 1.0 / np.sqrt(np.maximum(counts[system_idx], 1.0))
+    w *= len(w) / w.sum()
+    model = RetentionModel(reference=class_hsm("C18"), **params)
+    return model.fit(ts.solutes, solute_idx, ts.contexts, system_idx, log_kw, sample_weight=w)
 
 
 def predict_rows(model: RetentionModel, ts: TrainingSet, mask: np.ndarray | None = None):

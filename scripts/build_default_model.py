@@ -82,8 +82,9 @@ def main(argv=None) -> int:
         return 2
     t_start = time.perf_counter()
     ts = load_open_training_set(root)
-    print(f"training set: {ts.rt_min.size} rows, {len(ts.systems)} systems, "
-          f"{len(np.unique(ts.groups))} sources ({time.perf_counter() - t_start:.0f} s)")
+    print(f"training set: {ts.rt_min.size} rows and {ts.void.solute_idx.size} void rows, "
+          f"{len(ts.systems)} systems, {len(np.unique(ts.groups))} sources "
+          f"({time.perf_counter() - t_start:.0f} s)")
     fp = cross_validate(ts, n_folds=args.folds, split=args.split)
     table = evaluate(ts, fp)
     summary = summarise(table)
@@ -134,6 +135,7 @@ def main(argv=None) -> int:
         print(json.dumps(summary, indent=1))
         print(model_card(summary, {"trained": "-", "training_data": "open-rp", "n_rows":
                                    int(ts.rt_min.size), "n_systems": len(ts.systems),
+                                   "n_void_rows": int(ts.void.solute_idx.size),
                                    "training_data_sha256": "-",
                                    "validation": f"GroupKFold({args.folds}) by {args.split}"},
                          table, "-", time.perf_counter() - t_start))
@@ -156,6 +158,7 @@ def main(argv=None) -> int:
         "training_data": "open-rp (derived from RepoRT, CC BY-SA 4.0)",
         "training_data_sha256": data_fingerprint(raw),
         "n_rows": int(ts.rt_min.size),
+        "n_void_rows": int(ts.void.solute_idx.size),
         "n_systems": len(ts.systems),
         "validation": f"GroupKFold({args.folds}) by source publication",
     }
@@ -232,10 +235,12 @@ def model_card(summary: dict, meta: dict, table, sha: str, seconds: float) -> st
 - Tool version: {__version__}; trained {meta['trained']}; build time {seconds / 60:.1f} min
   on this machine; SHA-256 `{sha}`.
 - Training data: {meta['training_data']}: {meta['n_rows']} retention times on
-  {meta['n_systems']} reversed-phase systems. RepoRT collects published LC retention times
-  with their chromatographic metadata; each dataset keeps its source publication (DOI in
-  `systems.tsv`). The data and adaptations of it are licensed CC BY-SA 4.0; this model is
-  derived from it and is shared under the same licence. Training-data SHA-256:
+  {meta['n_systems']} reversed-phase systems, and {meta.get('n_void_rows', '-')} compounds
+  that eluted at or near t0 (up to 1.15 t0), kept as upper bounds on log kw. RepoRT
+  collects published LC retention times with their chromatographic metadata; each dataset
+  keeps its source publication (DOI in `systems.tsv`). The data and adaptations of it are
+  licensed CC BY-SA 4.0; this model is derived from it and is shared under the same
+  licence. Training-data SHA-256:
   `{meta['training_data_sha256']}`.
 - What it predicts: LSS retention parameters (log kw, with S from 0.25 M^0.5) of a small
   molecule on a described reversed-phase system (column HSM parameters, organic modifier,
