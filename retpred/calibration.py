@@ -2,9 +2,17 @@
 
 The correction works in retention space: each calibrant's measured time is turned into its
 observed ``log kw`` through the gradient engine with the user's own method (exact inverse),
-and a map ``log kw_pred -> log kw_obs`` is fitted. Up to four candidate maps, each scored by
+and a map ``log kw_pred -> log kw_obs`` is fitted. Up to five candidate maps, each scored by
 its leave-one-out error in *time* (the quantity the user measures):
 
+- ``unchanged``: ``log kw = pred``, the model's own predictions (no parameter, so its
+  leave-one-out error is simply its error on the calibrants); with two or more
+  calibrants. It lets the blend keep a model that already fits the system: on the open
+  data (283 left-out systems, 10 random calibrants, seeds 0-3 of the same draws) 49
+  systems ended worse after the other maps than before any, and taking it into the blend
+  moved the median error from 2.57, 2.66, 2.73, 2.79 % of the run to 2.59, 2.57, 2.64,
+  2.74 % (mean 2.69 -> 2.64; average weight 0.14). Like the others it is followed by the
+  structure-aware corrections below;
 - ``shift``: ``log kw = pred + a`` (one parameter: the system is uniformly more or less
   retentive, e.g. a column batch, an eluent or a dwell difference);
 - ``linear``: ``log kw = a + b (pred - pivot)``, slope bounded to 0.5-2, fitted on the
@@ -86,7 +94,7 @@ HUBER_C = 1.345
 TIME_WEIGHT_RANGE = 5.0
 #: log kw step of the central difference that gives the time weights
 JACOBIAN_STEP = 0.01
-KINDS = ("shift", "linear", "monotone", "selectivity")
+KINDS = ("unchanged", "shift", "linear", "monotone", "selectivity")
 
 
 @dataclass(frozen=True)
@@ -421,6 +429,8 @@ def _fit(kind: str, x: np.ndarray, y: np.ndarray, e: np.ndarray | None = None,
     """One candidate map on calibrants ``x`` (predicted) -> ``y`` (observed log kw); ``e``:
     their selectivity terms (log P, TPSA/100), used by the selectivity kind; ``w``: their
     time weights (:func:`time_weights`), used by the linear and monotone kinds."""
+    if kind == "unchanged":
+        return CalibrationMap(kind="unchanged", offset=0.0)
     if kind == "shift":
         return CalibrationMap(kind="shift", offset=float(np.median(y - x)))
     if kind == "selectivity":
@@ -449,7 +459,10 @@ def _fit(kind: str, x: np.ndarray, y: np.ndarray, e: np.ndarray | None = None,
 
 
 def candidate_kinds(n: int, with_traits: bool = False) -> list[str]:
-    kinds = ["shift"]
+    """The kinds fitted on ``n`` calibrants (``unchanged`` needs two: with one there is
+    no leave-one-out error to weigh the others against)."""
+    kinds = ["unchanged"] if n >= 2 else []
+    kinds.append("shift")
     if n >= MIN_LINEAR:
         kinds.append("linear")
     if n >= MIN_MONOTONE:

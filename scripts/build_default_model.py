@@ -285,10 +285,11 @@ that training does not hold takes the mean of those it does
 ({summary.get('n_skeleton_forms')} stereo-blind forms). It is one constant per compound, so
 it does not change a predicted pH or column shift.
 
-Calibration (the 10-calibrant figures): shift, linear, selectivity (log P and TPSA terms)
-and monotone maps of the predicted log kw, each followed by the compound-factor correction
-(system loadings fitted on the calibrants the open data know; each fold's factors from its
-own training systems) and a fingerprint-similarity neighbour correction, then averaged
+Calibration (the 10-calibrant figures): the predicted log kw unchanged and its shift,
+linear, selectivity (log P and TPSA terms) and monotone maps, each followed by the
+compound-factor correction (system loadings fitted on the calibrants the open data know;
+each fold's factors from its own training systems) and a fingerprint-similarity neighbour
+correction, then averaged
 with weights 1 / (leave-one-out error in time)^2 (`retpred/calibration.py`).
 
 Ratio of calibrated MedAE to the descriptor baseline: {f('ratio_cal_vs_gbm_cal', 2)};

@@ -48,21 +48,44 @@ def test_single_calibrant_is_a_shift(prog):
 def test_planted_shift_recovered(prog):
     pred, obs, rt, s = _case(prog, 6, shift=-0.35)
     cal = fit_calibration(pred, obs, rt, lambda v: elute(v, s, prog).rt_min)
-    np.testing.assert_allclose(cal.apply(pred), obs, atol=1e-9)
-    np.testing.assert_allclose(elute(cal.apply(pred), s, prog).rt_min, rt, rtol=1e-9)
-    assert cal.loo_median_abs_error_min < 1e-6
+    # the exact maps share the weight; the unchanged one (0.35 off, about 0.3 min) keeps
+    # (LOO_FLOOR_MIN / its error)^2 of the exact maps' share, a few 1e-4
+    assert cal.map_of("unchanged").weight < 1e-3
+    np.testing.assert_allclose(cal.apply(pred), obs, atol=1e-3)
+    np.testing.assert_allclose(elute(cal.apply(pred), s, prog).rt_min, rt, rtol=1e-3)
+    assert cal.loo_median_abs_error_min < 1e-3
 
 
 def test_planted_slope_weights_linear_and_is_recovered(prog):
     pred, obs, rt, s = _case(prog, 8, shift=0.2, slope=1.3)
     cal = fit_calibration(pred, obs, rt, lambda v: elute(v, s, prog).rt_min)
-    assert cal.kind == "blend" and {m.kind for m in cal.maps} == {"shift", "linear"}
+    assert cal.kind == "blend" and {m.kind for m in cal.maps} == {"unchanged", "shift",
+                                                                   "linear"}
     linear = cal.map_of("linear")
     assert linear.slope == pytest.approx(1.3, abs=1e-9)
     assert cal.loo_errors_min["linear"] < cal.loo_errors_min["shift"]
     # the exact linear map (LOO error ~0, floored) outweighs the shift by far
     assert linear.weight > 0.99
     np.testing.assert_allclose(cal.apply(pred), obs, atol=0.01 * np.ptp(obs))
+
+
+def test_unchanged_map_weighs_in_only_where_the_model_already_fits(prog):
+    # A candidate without parameters that is right should, on average over draws, outweigh
+    # candidates that spend their parameters on noise (they only add estimation variance to
+    # the same error); where the system is planted 0.3 log units more retentive it must
+    # weigh almost nothing.
+    def mean_weights(shift):
+        w = {}
+        for seed in range(40):
+            pred, obs, rt, s = _case(prog, 10, shift=shift, noise=0.05, seed=seed)
+            cal = fit_calibration(pred, obs, rt, lambda v, s=s: elute(v, s, prog).rt_min)
+            for m in cal.maps:
+                w.setdefault(m.kind, []).append(m.weight)
+        return {k: float(np.mean(v)) for k, v in w.items()}
+
+    fits = mean_weights(0.0)
+    assert fits["unchanged"] == max(fits.values())
+    assert mean_weights(0.3)["unchanged"] < 0.02
 
 
 def test_blend_weights_are_inverse_variance():
