@@ -278,7 +278,8 @@ def run_calibrate(calibrants, method_path, *, out, model=None, force=False, quie
         c.print(f"calibration ({cal.describe()}) from {cal.n_calibrants} compound(s) on "
                 f"{method_summary(method)}")
         for kind, e in cal.loo_errors_min.items():
-            c.print(f"  leave-one-out median |error| with '{kind}': {e:.3f} min")
+            what = " (the model's own predictions)" if kind == "unchanged" else ""
+            c.print(f"  leave-one-out median |error| with '{kind}'{what}: {e:.3f} min")
         if np.isfinite(cal.loo_median_abs_error_min):
             c.print(f"  leave-one-out median |error| of the correction used: "
                     f"{cal.loo_median_abs_error_min:.3f} min")
