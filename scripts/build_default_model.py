@@ -289,8 +289,8 @@ Calibration (the 10-calibrant figures): the predicted log kw unchanged and its s
 linear, selectivity (log P and TPSA terms) and monotone maps, each followed by the
 compound-factor correction (system loadings fitted on the calibrants the open data know;
 each fold's factors from its own training systems) and a fingerprint-similarity neighbour
-correction, then averaged
-with weights 1 / (leave-one-out error in time)^2 (`retpred/calibration.py`).
+correction, then averaged with weights 1 / (leave-one-out error in time)^2
+(`retpred/calibration.py`).
 
 Ratio of calibrated MedAE to the descriptor baseline: {f('ratio_cal_vs_gbm_cal', 2)};
 to the log P baseline: {f('ratio_cal_vs_logp_cal', 2)}. Per-system figures:

@@ -71,9 +71,10 @@ def test_planted_slope_weights_linear_and_is_recovered(prog):
 
 def test_unchanged_map_weighs_in_only_where_the_model_already_fits(prog):
     # A candidate without parameters that is right should, on average over draws, outweigh
-    # candidates that spend their parameters on noise (they only add estimation variance to
-    # the same error); where the system is planted 0.3 log units more retentive it must
-    # weigh almost nothing.
+    # candidates that spend their parameters on noise: their estimation variance adds to the
+    # same error (a mean fitted on n points predicts a new one with error variance
+    # sigma^2 (1 + 1/n); textbook regression, from memory). Where the system is planted
+    # 0.3 log units more retentive it must weigh almost nothing.
     def mean_weights(shift):
         w = {}
         for seed in range(40):
