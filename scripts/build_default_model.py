@@ -53,7 +53,11 @@ from retpred.io import atomic_output, atomic_output_path  # noqa: E402
 from retpred.model import data_fingerprint, now_utc  # noqa: E402
 from retpred.modelfile import DEFAULT_MODEL_NAME, MODELS_DIR, save_model, sha256_file  # noqa: E402
 from retpred.opendata import NOT_FOUND_MESSAGE, find_open_data  # noqa: E402
-from retpred.training import fit_model, load_open_training_set  # noqa: E402
+from retpred.training import (  # noqa: E402
+    MIN_RT_OVER_T0,
+    fit_model,
+    load_open_training_set,
+)
 
 #: Fixed subset used by the test that checks the shipped model reproduces its figures:
 #: every 37th usable system in dataset order (chosen by position, not by results).
@@ -236,7 +240,7 @@ def model_card(summary: dict, meta: dict, table, sha: str, seconds: float) -> st
   on this machine; SHA-256 `{sha}`.
 - Training data: {meta['training_data']}: {meta['n_rows']} retention times on
   {meta['n_systems']} reversed-phase systems, and {meta.get('n_void_rows', '-')} compounds
-  that eluted at or near t0 (up to 1.15 t0), kept as upper bounds on log kw. RepoRT
+  that eluted at or near t0 (up to {MIN_RT_OVER_T0:g} t0), kept as upper bounds on log kw. RepoRT
   collects published LC retention times with their chromatographic metadata; each dataset
   keeps its source publication (DOI in `systems.tsv`). The data and adaptations of it are
   licensed CC BY-SA 4.0; this model is derived from it and is shared under the same
