@@ -494,6 +494,35 @@ def _with_corrections(m: CalibrationMap, x: np.ndarray, y: np.ndarray,
     return replace(m, factor_loadings=loadings, nb_residuals=tuple(map(float, resid)))
 
 
+def _restricted(rt_of: Callable[[np.ndarray], np.ndarray],
+                mask: np.ndarray) -> Callable[[np.ndarray], np.ndarray]:
+    """``rt_of`` for the calibrants ``mask`` only: takes and returns their values alone."""
+
+    def rt_at(lk_sub: np.ndarray) -> np.ndarray:
+        full = np.full(mask.size, np.nan)
+        full[mask] = lk_sub
+        return rt_of(full)[mask]
+
+    return rt_at
+
+
+def _censored_targets(x: np.ndarray, y: np.ndarray, t: np.ndarray, up: np.ndarray,
+                      cens: np.ndarray, rt_of: Callable[[np.ndarray], np.ndarray],
+                      traits: SoluteTraits | None) -> np.ndarray:
+    """``y`` with the censored calibrants' targets ``min(mu, b)`` (:func:`fit_calibration`);
+    ``mu`` is the model's own prediction when no calibrant was retained."""
+    exact = ~cens & np.isfinite(x) & np.isfinite(y) & np.isfinite(t)
+    mu = x[cens]
+    if exact.any():
+        ie = np.flatnonzero(exact)
+        first = fit_calibration(x[exact], y[exact], t[exact], _restricted(rt_of, exact),
+                                traits=None if traits is None else traits.take(ie))
+        mu = first.apply(mu, None if traits is None else traits.take(np.flatnonzero(cens)))
+    out = y.copy()
+    out[cens] = np.minimum(mu, up[cens])
+    return out
+
+
 def fit_calibration(
     pred_log_kw: np.ndarray,
     obs_log_kw: np.ndarray,
@@ -502,20 +531,37 @@ def fit_calibration(
     names: list[str] | None = None,
     method_summary: str = "",
     traits: SoluteTraits | None = None,
+    upper_log_kw: np.ndarray | None = None,
 ) -> Calibration:
     """Fit the candidate maps, weight them by leave-one-out error in time, blend them.
 
     ``rt_of(log_kw)`` gives the calibrants' times for a vector of their ``log kw`` (with
     their own S, on the user's method). ``traits`` (the calibrants' structures) enables the
     selectivity kind and the structure-aware corrections.
+
+    ``upper_log_kw``: per calibrant, an upper bound ``b`` on its ``log kw`` where it eluted
+    at or near t0 (NaN for the others; ``obs_log_kw`` is then ignored). Such a calibrant is
+    censored: a first blend fitted on the other calibrants maps its prediction to ``mu``,
+    and it enters the fit with target ``min(mu, b)``, the zero-noise E step of a censored
+    (Tobit) regression, as for the training data's void rows (DEVELOPERS.md, "Void rows").
     """
     x = np.asarray(pred_log_kw, dtype=float)
     y = np.asarray(obs_log_kw, dtype=float)
     t = np.asarray(rt_obs_min, dtype=float)
-    ok = np.isfinite(x) & np.isfinite(y) & np.isfinite(t)
     names = names or [f"calibrant {i + 1}" for i in range(x.size)]
+    warnings = []
+    if upper_log_kw is not None:
+        up = np.asarray(upper_log_kw, dtype=float)
+        cens = np.isfinite(up) & np.isfinite(x) & np.isfinite(t)
+        if cens.any():
+            y = _censored_targets(x, y, t, up, cens, rt_of, traits)
+            void_names = [n for n, c in zip(names, cens, strict=True) if c]
+            warnings.append(f"{len(void_names)} calibrant(s) eluted at or near t0 and only "
+                            f"bound the correction from above: {', '.join(void_names)}")
+    ok = np.isfinite(x) & np.isfinite(y) & np.isfinite(t)
     if ok.sum() < 1:
-        raise InputError("no usable calibrant (each needs a valid structure and rt after t0)")
+        raise InputError("no usable calibrant (each needs a valid structure and an rt "
+                         "not before t0)")
     xi, yi, ti = x[ok], y[ok], t[ok]
     used_names = [n for n, k in zip(names, ok, strict=True) if k]
     n = xi.size
@@ -523,10 +569,7 @@ def fit_calibration(
     ei = ti_traits.selectivity_terms() if ti_traits is not None else None
     kinds = candidate_kinds(n, ti_traits is not None)
 
-    def rt_at(lk_ok: np.ndarray) -> np.ndarray:
-        full = np.full(x.size, np.nan)
-        full[ok] = lk_ok
-        return rt_of(full)[ok]
+    rt_at = _restricted(rt_of, ok)
 
     wi = time_weights(time_jacobian(rt_at, yi))
     loo: dict[str, float] = {}
@@ -553,7 +596,6 @@ def fit_calibration(
     nb_fp: tuple = ()
     if any(m.nb_residuals for m in maps):
         nb_fp = tuple(tuple(int(v) for v in row) for row in ti_traits.fingerprints)
-    warnings = []
     blend_loo = float("nan")
     if n >= 2:
         err = rt_at(weights @ loo_lk) - ti
@@ -567,8 +609,8 @@ def fit_calibration(
                 )
     dropped = [name for name, k in zip(names, ok, strict=True) if not k]
     if dropped:
-        warnings.append(f"{len(dropped)} calibrant(s) not usable (bad structure or rt before "
-                        f"t0): {', '.join(dropped)}")
+        warnings.append(f"{len(dropped)} calibrant(s) not usable (bad structure or rt well "
+                        f"before t0): {', '.join(dropped)}")
     return Calibration(
         maps=maps, nb_fingerprints=nb_fp, n_factor_calibrants=n_fac, n_calibrants=n,
         loo_median_abs_error_min=blend_loo, loo_errors_min=loo,

@@ -203,20 +203,25 @@ def add_pairs(table: pd.DataFrame, model: RetentionModel,
 def calibrate(
     prep: Prepared, smiles: Sequence[str], rt_obs_min: np.ndarray, names: Sequence[str]
 ) -> Calibration:
-    """Fit a :class:`Calibration` for ``prep``'s method from measured reference compounds."""
+    """Fit a :class:`Calibration` for ``prep``'s method from measured reference compounds.
+
+    Calibrants eluting at or near t0 (:func:`retpred.training.void_bound_log_kw`) bound
+    the correction from above instead of entering it as exact times."""
     from retpred.method import method_summary
+    from retpred.training import void_bound_log_kw
 
     sol = featurise(list(smiles))
     log_kw, s = prep.model.retention_parameters(sol, prep.context)
     rt_obs = np.asarray(rt_obs_min, dtype=float)
     obs = log_kw_from_rt(rt_obs, s, prep.program)
+    upper = void_bound_log_kw(rt_obs, s, prep.program)
 
     def rt_of(lk):
         return elute(lk, s, prep.program).rt_min
 
     cal = fit_calibration(
         log_kw, obs, rt_obs, rt_of, names=list(names), method_summary=method_summary(prep.method),
-        traits=SoluteTraits.of(sol, model=prep.model),
+        traits=SoluteTraits.of(sol, model=prep.model), upper_log_kw=upper,
     )
     return replace(cal, model_id=prep.model.identity())
 

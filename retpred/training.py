@@ -14,7 +14,7 @@ import numpy as np
 import pandas as pd
 
 from retpred.column import class_hsm
-from retpred.gradient import elute, log_kw_from_rt
+from retpred.gradient import ElutionProgram, elute, log_kw_from_rt
 from retpred.model import RetentionModel, Solutes, SystemContext, featurise, s_parameter
 from retpred.opendata import OpenSystem, load_compounds, load_systems
 
@@ -27,6 +27,21 @@ MIN_RT_OVER_T0 = 1.15
 #: Rows eluting before this fraction of t0 are data errors (an unretained solute elutes at t0),
 #: not void rows.
 VOID_MIN_RT_OVER_T0 = 0.8
+
+
+def void_bound_log_kw(rt_min: np.ndarray, s: np.ndarray, prog: ElutionProgram) -> np.ndarray:
+    """Upper bound on ``log kw`` of solutes eluting at or near t0: for ``rt_min`` in
+    (``VOID_MIN_RT_OVER_T0``, ``MIN_RT_OVER_T0``] x t0, the ``log kw`` that elutes at
+    ``MIN_RT_OVER_T0`` t0 with the solute's ``S`` (:func:`log_kw_from_rt`); NaN elsewhere."""
+    rt = np.asarray(rt_min, dtype=float)
+    t0 = prog.dead_time_min
+    near = (rt <= MIN_RT_OVER_T0 * t0) & (rt > VOID_MIN_RT_OVER_T0 * t0)
+    out = np.full(rt.shape, np.nan)
+    if near.any():
+        out[near] = log_kw_from_rt(np.full(int(near.sum()), MIN_RT_OVER_T0 * t0),
+                                   np.broadcast_to(np.asarray(s, dtype=float), rt.shape)[near],
+                                   prog)
+    return out
 
 
 @dataclass
@@ -119,16 +134,13 @@ def build_training_set(
         sidx = np.array([smiles_index[s] for s in grp["smiles"]])
         use = solutes.usable[sidx]
         rt = grp["rt_min"].to_numpy(dtype=float)
-        t_void = MIN_RT_OVER_T0 * prog.dead_time_min
-        near = use & (rt <= t_void) & (rt > VOID_MIN_RT_OVER_T0 * prog.dead_time_min)
+        bound = void_bound_log_kw(rt, s_parameter(solutes.mw[sidx]), prog)
+        near = use & np.isfinite(bound)
         if near.any():
-            bound = log_kw_from_rt(np.full(near.sum(), t_void),
-                                   s_parameter(solutes.mw[sidx[near]]), prog)
-            ok = np.isfinite(bound)
-            void_sol.append(sidx[near][ok])
-            void_sys.append(np.full(ok.sum(), sysi))
-            void_bound.append(bound[ok])
-        use &= rt > t_void
+            void_sol.append(sidx[near])
+            void_sys.append(np.full(near.sum(), sysi))
+            void_bound.append(bound[near])
+        use &= rt > MIN_RT_OVER_T0 * prog.dead_time_min
         if not use.any():
             continue
         sidx, rt = sidx[use], rt[use]

@@ -450,3 +450,83 @@ def test_unusable_calibrants_are_named(prog):
     assert cal.n_calibrants == 4
     assert any("2 calibrant(s) not usable" in w and w.endswith("std1, std4")
                for w in cal.warnings)
+
+
+# Void calibrants. A standard eluting at or near t0 only says its log kw is at most the
+# value that elutes at 1.15 t0 (a bound, b): the censored-regression (Tobit) view of a
+# detection limit, the same rule as for the training data's void rows (DEVELOPERS.md,
+# "Void rows"). Its target is min(mu, b), mu from a first fit on the retained standards.
+
+
+def test_lone_void_calibrant_is_the_censored_target(prog):
+    from retpred.training import void_bound_log_kw
+
+    s, rt = np.array([4.5]), np.array([0.66])  # 1.1 t0
+    b = void_bound_log_kw(rt, s, prog)[0]
+    # the log kw at 1.15 t0 elutes there (engine checked against closed forms elsewhere)
+    assert elute(np.array([b]), s, prog).rt_min[0] == pytest.approx(1.15 * 0.6, abs=1e-6)
+    rt_of = lambda v: elute(v, s, prog).rt_min  # noqa: E731
+    # predicted retained: pulled down to the bound
+    pulled = fit_calibration(np.array([b + 1.0]), np.array([np.nan]), rt, rt_of,
+                             upper_log_kw=np.array([b]))
+    assert pulled.kind == "shift" and pulled.maps[0].offset == pytest.approx(-1.0)
+    # predicted in the void already: no information, no correction
+    kept = fit_calibration(np.array([b - 1.0]), np.array([np.nan]), rt, rt_of,
+                           upper_log_kw=np.array([b]))
+    assert kept.maps[0].offset == pytest.approx(0.0, abs=1e-12)
+    assert kept.n_calibrants == 1 and "near t0" in kept.warnings[0]
+
+
+def _with_void(prog, pred_void_above_bound):
+    """Seven retained standards with a planted shift of +0.3 and three void standards
+    (1.03-1.10 t0) predicted ``pred_void_above_bound`` above their bounds."""
+    from retpred.gradient import log_kw_from_rt
+    from retpred.training import void_bound_log_kw
+
+    pred, obs, rt, s = _case(prog, 7, shift=0.3, seed=0)
+    sv, tv = np.array([4.0, 4.5, 5.0]), np.array([0.62, 0.64, 0.66])
+    b = void_bound_log_kw(tv, sv, prog)
+    pv = b + np.asarray(pred_void_above_bound)
+    n = pred.size
+    a = dict(pred=np.r_[pred, pv], obs=np.r_[obs, log_kw_from_rt(tv, sv, prog)],
+             rt=np.r_[rt, tv], s=np.r_[s, sv])
+    a["up"] = np.r_[np.full(n, np.nan), b]
+    a["rt_of"] = lambda v: elute(v, a["s"], prog).rt_min
+    retained = fit_calibration(pred, obs, rt, lambda v: elute(v, s, prog).rt_min)
+    return a, pv, retained, (pred, obs)
+
+
+def test_void_calibrants_predicted_in_the_void_leave_the_map_alone(prog):
+    a, pv, retained, (pred, obs) = _with_void(prog, [-1.3, -1.0, -0.8])
+    cens = fit_calibration(a["pred"], a["obs"], a["rt"], a["rt_of"],
+                           names=[f"std{i}" for i in range(10)], upper_log_kw=a["up"])
+    assert cens.n_calibrants == 10
+    assert any(w.endswith("std7, std8, std9") and "near t0" in w for w in cens.warnings)
+    np.testing.assert_allclose(cens.apply(pred), obs, atol=1e-3)
+    np.testing.assert_allclose(cens.apply(pv), retained.apply(pv), atol=1e-3)
+
+
+def test_void_calibrants_predicted_retained_pull_the_map_down(prog):
+    a, pv, retained, _ = _with_void(prog, [0.3, 0.5, 0.8])
+    cens = fit_calibration(a["pred"], a["obs"], a["rt"], a["rt_of"], upper_log_kw=a["up"])
+    exact = fit_calibration(a["pred"], a["obs"], a["rt"], a["rt_of"])
+    # below what the retained standards alone say, but not as far down as their times
+    # read as exact (those lie below the bound: eluted before 1.15 t0)
+    assert np.all(cens.apply(pv) < retained.apply(pv) - 0.02)
+    assert np.all(cens.apply(pv) > exact.apply(pv) + 0.02)
+
+
+def test_predict_calibrate_bounds_a_t0_marker(prep):
+    # uracil, the usual unretained t0 marker on reversed phase (common practice), eluting a
+    # little before t0 (exclusion from the pores; common practice) is used as a bound, not
+    # dropped; a standard at half t0 cannot be real and is dropped
+    from retpred.predict import calibrate
+
+    t0 = prep.t0_min
+    smiles = ["O=c1cc[nH]c(=O)[nH]1", "Cn1cnc2c1c(=O)n(C)c(=O)n2C", "Cc1ccccc1",
+              "c1ccc2ccccc2c1", "OCC(O)CO"]
+    cal = calibrate(prep, smiles, np.array([0.95 * t0, 2.0, 7.1, 7.9, 0.5 * t0]),
+                    ["uracil", "caffeine", "toluene", "naphthalene", "glycerol"])
+    assert cal.n_calibrants == 4
+    assert any("near t0" in w and w.endswith("uracil") for w in cal.warnings)
+    assert any("not usable" in w and w.endswith("glycerol") for w in cal.warnings)
