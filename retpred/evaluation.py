@@ -20,8 +20,9 @@ from sklearn.model_selection import GroupKFold
 
 from retpred.calibration import SoluteTraits, fit_calibration
 from retpred.chemistry import ionise
-from retpred.gradient import STATUS_NOT_ELUTED, elute
-from retpred.training import TrainingSet, fit_model
+from retpred.gradient import STATUS_NOT_ELUTED, elute, log_kw_from_rt
+from retpred.model import s_parameter
+from retpred.training import TrainingSet, fit_model, void_bound_log_kw
 
 ORDER_MIN_GAP_MIN = 0.5
 N_CALIBRANTS = 10
@@ -93,13 +94,15 @@ def _scored_systems(ts: TrainingSet):
             yield sysi, m
 
 
-def calibrate_on(pred_lk, obs_lk, obs_rt, s, prog, pick, traits=None):
+def calibrate_on(pred_lk, obs_lk, obs_rt, s, prog, pick, traits=None, upper_log_kw=None):
     """Fit the user-facing calibration on the calibrants ``pick`` of one system (``traits``:
-    the system's rows' :class:`SoluteTraits`, enabling the structure-aware corrections)."""
+    the system's rows' :class:`SoluteTraits`, enabling the structure-aware corrections;
+    ``upper_log_kw``: the rows' void bounds, :func:`fit_calibration`)."""
     s_pick = s[pick]
     return fit_calibration(pred_lk[pick], obs_lk[pick], obs_rt[pick],
                            lambda v: elute(v, s_pick, prog).rt_min,
-                           traits=None if traits is None else traits.take(pick))
+                           traits=None if traits is None else traits.take(pick),
+                           upper_log_kw=None if upper_log_kw is None else upper_log_kw[pick])
 
 
 def row_traits(ts: TrainingSet, rows: np.ndarray, fp: FoldPredictions | None = None
@@ -118,6 +121,10 @@ class FoldPredictions:
     baseline_frac: np.ndarray  # descriptor-GBM prediction of rt / program end
     #: compound factors per row, from the model of the row's fold (zeros where it has none)
     factors: np.ndarray | None = None
+    #: held-out predicted log kw and compound factors of the void rows (``ts.void``; NaN
+    #: and zeros for those of systems without retained rows, which have no fold)
+    void_log_kw: np.ndarray | None = None
+    void_factors: np.ndarray | None = None
 
 
 def descriptor_baseline(ts: TrainingSet, train: np.ndarray, test: np.ndarray) -> np.ndarray:
@@ -153,6 +160,15 @@ def cross_validate(ts: TrainingSet, n_folds: int = 5, with_baseline: bool = True
     lk = np.full(ts.rt_min.size, np.nan)
     base = np.full(ts.rt_min.size, np.nan)
     factors = None
+    void = ts.void
+    n_void = 0 if void is None else void.solute_idx.size
+    void_fold = np.full(n_void, -1)
+    if n_void:
+        fold_of_system = np.full(len(ts.systems), -1)
+        fold_of_system[ts.system_idx] = fold
+        void_fold = fold_of_system[void.system_idx]
+    void_lk = np.full(n_void, np.nan)
+    void_fac = None
     for f in range(int(fold.max()) + 1):
         tem = fold == f
         trm = ~tem
@@ -163,10 +179,18 @@ def cross_validate(ts: TrainingSet, n_folds: int = 5, with_baseline: bool = True
         fac = model.factor_matrix(ts.solutes, ts.solute_idx[tem])
         if factors is None:
             factors = np.zeros((ts.rt_min.size, fac.shape[1]))
+            void_fac = np.zeros((n_void, fac.shape[1]))
         factors[tem] = fac
+        vm = void_fold == f
+        if vm.any():
+            void_lk[vm] = model.retention_parameters(
+                ts.solutes, ts.contexts, which=void.system_idx[vm], idx=void.solute_idx[vm]
+            )[0]
+            void_fac[vm] = model.factor_matrix(ts.solutes, void.solute_idx[vm])
         if with_baseline:
             base[tem] = descriptor_baseline(ts, trm, tem)
-    return FoldPredictions(log_kw=lk, fold=fold, baseline_frac=base, factors=factors)
+    return FoldPredictions(log_kw=lk, fold=fold, baseline_frac=base, factors=factors,
+                           void_log_kw=void_lk, void_factors=void_fac)
 
 
 def novel_rows(ts: TrainingSet, fp: FoldPredictions) -> np.ndarray:
@@ -299,6 +323,51 @@ def evaluate(ts: TrainingSet, fp: FoldPredictions, n_draws: int = 5, seed: int =
         table["cal_novel_interval_hits"] = novel_hits
         table["cal_novel_interval_n"] = novel_total
     return table
+
+
+def void_calibrant_draws(ts: TrainingSet, fp: FoldPredictions, n_draws: int = 5,
+                         seed: int = 0) -> pd.DataFrame:
+    """Calibrants drawn from *every* row of a left-out system, its void rows (``ts.void``)
+    too, as a user's standards may include a t0 marker or a polar compound eluting in the
+    initial hold; scored on the retained rows not drawn. One row per system: the median
+    absolute error (% of the last retained time, :func:`system_metrics`) with the void
+    calibrants used as ``exact`` times, as ``bounds`` (the rule of
+    :func:`retpred.predict.calibrate`: :func:`retpred.training.void_bound_log_kw`), and,
+    for reference, ``retained`` (the protocol: draws from retained rows only)."""
+    void = ts.void
+    if void is None or fp.void_log_kw is None:
+        raise ValueError("needs a training set with void rows and their fold predictions")
+    rng = np.random.default_rng(seed)
+    rows = []
+    for sysi, m in _scored_systems(ts):
+        prog = ts.systems[sysi].program
+        vm = np.flatnonzero((void.system_idx == sysi) & np.isfinite(fp.void_log_kw))
+        nr = m.size
+        tr = SoluteTraits.of(ts.solutes, np.r_[ts.solute_idx[m], void.solute_idx[vm]])
+        if fp.factors is not None:
+            tr = replace(tr, factors=np.r_[fp.factors[m], fp.void_factors[vm]])
+        pred = np.r_[fp.log_kw[m], fp.void_log_kw[vm]]
+        s = np.r_[ts.s[m], s_parameter(ts.solutes.mw[void.solute_idx[vm]])]
+        rt = np.r_[ts.rt_min[m], void.rt_min[vm]]
+        obs = np.r_[ts.log_kw[m], log_kw_from_rt(rt[nr:], s[nr:], prog)]
+        upper = void_bound_log_kw(rt, s, prog)
+        errs = {"exact": [], "bounds": [], "retained": []}
+        drawn = []
+        for _ in range(n_draws):
+            pick_all = rng.choice(rt.size, N_CALIBRANTS, replace=False)
+            pick_ret = rng.choice(nr, N_CALIBRANTS, replace=False)
+            for mode, pick in (("exact", pick_all), ("bounds", pick_all),
+                               ("retained", pick_ret)):
+                rest = np.setdiff1d(np.arange(nr), pick)
+                cal = calibrate_on(pred, obs, rt, s, prog, pick, tr,
+                                   upper_log_kw=upper if mode == "bounds" else None)
+                rt_cal = elute(cal.apply(pred[rest], tr.take(rest)), s[rest], prog).rt_min
+                errs[mode].append(system_metrics(rt[rest], rt_cal)["medae_pct"])
+            drawn.append(int(np.sum(pick_all >= nr)))
+        rows.append({"dataset": ts.systems[sysi].dataset, "n": nr, "n_void": int(vm.size),
+                     "void_drawn": float(np.mean(drawn)),
+                     **{f"{k}_medae_pct": _nan_safe(np.nanmean, v) for k, v in errs.items()}})
+    return pd.DataFrame(rows)
 
 
 def summarise(table: pd.DataFrame) -> dict:

@@ -65,17 +65,24 @@ _MODIFIER_MAP = {"acn": "acetonitrile", "meoh": "methanol", "acn+iproh": "aceton
                  "acn+meoh": "acetonitrile", "acn+acetone": "acetonitrile"}
 
 
-def find_open_data(path: str | os.PathLike | None = None) -> Path | None:
-    """The open-rp folder: ``path``, ``$RETPRED_OPEN_RP`` or ``../shared/datasets/open-rp``
-    next to the checkout; ``None`` when it is not there."""
-    candidates = []
+def not_found_message(path: str | os.PathLike | None = None) -> str:
+    """The one-line error for :func:`find_open_data` returning None for ``path``."""
     if path is not None:
-        candidates.append(Path(path))
-    if os.environ.get(ENV_VAR):
-        candidates.append(Path(os.environ[ENV_VAR]))
+        return f"{path}: no open retention data there (needs systems.tsv and compounds.tsv.gz)"
+    return f"{NOT_FOUND_MESSAGE} (or give --data)"
+
+
+def find_open_data(path: str | os.PathLike | None = None) -> Path | None:
+    """The open-rp folder: ``path`` when given (and only it: a folder named but not
+    holding the data must not be replaced by another one), else ``$RETPRED_OPEN_RP`` or
+    ``../shared/datasets/open-rp`` next to the checkout; ``None`` when it is not there."""
     here = Path(__file__).resolve().parent.parent
-    candidates.append(here.parent / "shared" / "datasets" / "open-rp")
-    candidates.append(Path.cwd().parent / "shared" / "datasets" / "open-rp")
+    if path is not None:
+        candidates = [Path(path)]
+    else:
+        candidates = [Path(os.environ[ENV_VAR])] if os.environ.get(ENV_VAR) else []
+        candidates += [here.parent / "shared" / "datasets" / "open-rp",
+                       Path.cwd().parent / "shared" / "datasets" / "open-rp"]
     for c in candidates:
         if (c / "systems.tsv").is_file() and (c / "compounds.tsv.gz").is_file():
             return c

@@ -55,10 +55,12 @@ class VoidRows:
     solute_idx: np.ndarray
     system_idx: np.ndarray
     bound_log_kw: np.ndarray
+    #: the observed times (for drawing void calibrants: ``scripts/void_calibrants.py``)
+    rt_min: np.ndarray
 
     def take(self, mask: np.ndarray) -> VoidRows:
         return VoidRows(solute_idx=self.solute_idx[mask], system_idx=self.system_idx[mask],
-                        bound_log_kw=self.bound_log_kw[mask])
+                        bound_log_kw=self.bound_log_kw[mask], rt_min=self.rt_min[mask])
 
 
 @dataclass
@@ -125,7 +127,7 @@ def build_training_set(
         smiles_index = {s: i for i, s in enumerate(uniq)}
     pos = {s.dataset: i for i, s in enumerate(systems)}
     sol_all, sys_all, rt_all, lk_all, s_all = [], [], [], [], []
-    void_sol, void_sys, void_bound = [], [], []
+    void_sol, void_sys, void_bound, void_rt = [], [], [], []
     for ds, grp in rows.groupby("dataset", sort=True):
         if ds not in pos:
             continue
@@ -140,6 +142,7 @@ def build_training_set(
             void_sol.append(sidx[near])
             void_sys.append(np.full(near.sum(), sysi))
             void_bound.append(bound[near])
+            void_rt.append(rt[near])
         use &= rt > MIN_RT_OVER_T0 * prog.dead_time_min
         if not use.any():
             continue
@@ -166,6 +169,7 @@ def build_training_set(
             solute_idx=np.concatenate(void_sol) if void_sol else np.zeros(0, dtype=int),
             system_idx=np.concatenate(void_sys) if void_sys else np.zeros(0, dtype=int),
             bound_log_kw=np.concatenate(void_bound) if void_bound else np.zeros(0),
+            rt_min=np.concatenate(void_rt) if void_rt else np.zeros(0),
         ),
     )
 

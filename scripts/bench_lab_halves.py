@@ -26,12 +26,12 @@ import numpy as np
 ROOT = Path(__file__).resolve().parent.parent
 sys.path.insert(0, str(ROOT))
 
-from retpred.evaluation import _scored_systems, cross_validate  # noqa: E402
+from _open_cv import open_data_cv  # noqa: E402
+
+from retpred.evaluation import _scored_systems  # noqa: E402
 from retpred.gradient import elute  # noqa: E402
 from retpred.lab import _apply, select_correction  # noqa: E402
 from retpred.model import solute_matrix  # noqa: E402
-from retpred.opendata import NOT_FOUND_MESSAGE, find_open_data, load_systems  # noqa: E402
-from retpred.training import load_open_training_set  # noqa: E402
 
 TARGET_RATIO = 0.7
 
@@ -63,14 +63,11 @@ def main(argv=None) -> int:
     ap.add_argument("--step", type=int, default=1)
     ap.add_argument("--min-compounds", type=int, default=40)
     args = ap.parse_args(argv)
-    root = find_open_data(args.data)
-    if root is None:
-        print(f"{NOT_FOUND_MESSAGE} (or give --data)", file=sys.stderr)
-        return 2
     t_start = time.perf_counter()
-    ids = {s.dataset for s in load_systems(root)[:: args.step]} if args.step > 1 else None
-    ts = load_open_training_set(root, ids)
-    fp = cross_validate(ts, n_folds=args.folds, with_baseline=False)
+    cv = open_data_cv(args.data, args.step, args.folds)
+    if cv is None:
+        return 2
+    ts, fp = cv
     rows = [half_split_ratio(ts, fp, sysi, m) for sysi, m in _scored_systems(ts)
             if m.size >= args.min_compounds]
     kinds = Counter(r[0] for r in rows)

@@ -52,7 +52,7 @@ from retpred.evaluation import (  # noqa: E402
 from retpred.io import atomic_output, atomic_output_path  # noqa: E402
 from retpred.model import data_fingerprint, now_utc  # noqa: E402
 from retpred.modelfile import DEFAULT_MODEL_NAME, MODELS_DIR, save_model, sha256_file  # noqa: E402
-from retpred.opendata import NOT_FOUND_MESSAGE, find_open_data  # noqa: E402
+from retpred.opendata import find_open_data, not_found_message  # noqa: E402
 from retpred.training import (  # noqa: E402
     MIN_RT_OVER_T0,
     fit_model,
@@ -82,7 +82,7 @@ def main(argv=None) -> int:
         return 2
     root = find_open_data(args.data)
     if root is None:
-        print(f"{NOT_FOUND_MESSAGE} (or give --data)", file=sys.stderr)
+        print(not_found_message(args.data), file=sys.stderr)
         return 2
     t_start = time.perf_counter()
     ts = load_open_training_set(root)

@@ -7,7 +7,7 @@ import pytest
 from rdkit import Chem
 from rdkit.Chem.rdMolDescriptors import CalcMolFormula
 
-from retpred.opendata import load_compounds, repair_triazine
+from retpred.opendata import ENV_VAR, find_open_data, load_compounds, repair_triazine
 
 
 @pytest.mark.parametrize(
@@ -81,3 +81,16 @@ def test_smallest_open_data_structure_sets_the_small_molecule_flag(open_data):
                       if (m := Chem.MolFromSmiles(s)) is not None])
     assert heavy.min() >= MIN_HEAVY_ATOMS
     assert np.sum(heavy <= MIN_HEAVY_ATOMS + 1) >= 10
+
+
+def test_a_named_data_folder_is_the_only_one_looked_at(tmp_path, monkeypatch):
+    # a folder given by --data that does not hold the data is reported as missing, even
+    # when the environment names one that does (no silent fall-back to other data)
+    good = tmp_path / "good"
+    good.mkdir()
+    for name in ("systems.tsv", "compounds.tsv.gz"):
+        (good / name).write_bytes(b"")
+    monkeypatch.setenv(ENV_VAR, str(good))
+    assert find_open_data() == good
+    assert find_open_data(good) == good
+    assert find_open_data(tmp_path / "missing") is None
