@@ -290,7 +290,7 @@ that training does not hold takes the mean of those it does
 it does not change a predicted pH or column shift.
 
 Calibration (the 10-calibrant figures): the predicted log kw unchanged and its shift,
-linear, selectivity (log P and TPSA terms) and monotone maps, each followed by the
+linear, selectivity (log P and TPSA terms), monotone and quadratic maps, each followed by the
 compound-factor correction (system loadings fitted on the calibrants the open data know;
 each fold's factors from its own training systems) and a fingerprint-similarity neighbour
 correction, then averaged with weights 1 / (leave-one-out error in time)^2

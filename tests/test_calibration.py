@@ -169,6 +169,16 @@ def test_json_round_trip_and_bad_file():
     d["maps"][0]["kind"], d["maps"][0]["weight"] = "linear", 0.9  # weights sum to 1.3
     with pytest.raises(InputError, match="inconsistent"):
         Calibration.from_json(json.dumps(d), path="sys.cal")
+    # a quadratic map round-trips; a file of format 2 (before the quadratic kind) reads
+    quad = Calibration(maps=(CalibrationMap(kind="quadratic", offset=0.3, slope=1.1,
+                                            pivot=2.0, curvature=0.12,
+                                            curve_range=(-1.5, 1.8)),),
+                       n_calibrants=10, loo_median_abs_error_min=0.05,
+                       cal_rt_range_min=(1.0, 9.0))
+    assert Calibration.from_json(quad.to_json()) == quad
+    d2 = json.loads(cal.to_json())
+    d2["format"] = 2
+    assert Calibration.from_json(json.dumps(d2)) == cal
     # a file of the single-map format 1 is refused with the way out
     with pytest.raises(InputError, match="refit it") as exc:
         Calibration.from_json('{"format": 1, "kind": "shift", "offset": 0}', path="sys.cal")
@@ -530,3 +540,73 @@ def test_predict_calibrate_bounds_a_t0_marker(prep):
     assert cal.n_calibrants == 4
     assert any("near t0" in w and w.endswith("uracil") for w in cal.warnings)
     assert any("not usable" in w and w.endswith("glycerol") for w in cal.warnings)
+
+
+
+def _curved_case(prog, n=12, curvature=0.15, seed=5):
+    rng = np.random.default_rng(seed)
+    pred = rng.uniform(1.0, 4.5, n)
+    s = rng.uniform(3.5, 6.0, n)
+    u = pred - np.median(pred)
+    obs = pred + 0.2 + 0.1 * u + curvature * u**2
+    return pred, obs, elute(obs, s, prog).rt_min, s
+
+
+def test_planted_curvature_is_recovered_and_weighted(prog, monkeypatch):
+    import retpred.calibration as cal_mod
+
+    pred, obs, rt, s = _curved_case(prog)
+    rt_of = lambda v: elute(v, s, prog).rt_min  # noqa: E731
+    cal = fit_calibration(pred, obs, rt, rt_of)
+    quad = cal.map_of("quadratic")
+    # the ridge shrinks the curvature a little; the exact map takes nearly all the weight
+    assert quad.curvature == pytest.approx(0.15, rel=0.05)
+    assert quad.weight > 0.9
+    assert cal.loo_errors_min["quadratic"] < cal.loo_errors_min["linear"] / 5
+    np.testing.assert_allclose(elute(cal.apply(pred), s, prog).rt_min, rt, rtol=2e-3)
+    # without the ridge the planted parabola comes back exactly
+    monkeypatch.setattr(cal_mod, "CURVATURE_RIDGE", 0.0)
+    exact = fit_calibration(pred, obs, rt, rt_of).map_of("quadratic")
+    assert exact.curvature == pytest.approx(0.15, abs=1e-8)
+    assert exact.slope == pytest.approx(1.1, abs=1e-8)
+    # no quadratic candidate below ten calibrants
+    assert "quadratic" not in fit_calibration(pred[:9], obs[:9], rt[:9], lambda v: elute(
+        v, s[:9], prog).rt_min).loo_errors_min
+
+
+def test_quadratic_map_is_straight_beyond_the_calibrants():
+    m = CalibrationMap(kind="quadratic", offset=0.3, slope=1.1, pivot=2.0, curvature=0.2,
+                       curve_range=(-1.0, 1.5))
+    x = np.array([1.0, 2.0, 3.5, 5.0, 6.0, -1.0, 0.0])
+    y = m.apply(x)
+    # inside: the parabola; beyond either end: the line of slope 1.1 through the end point
+    np.testing.assert_allclose(y[:3], 0.3 + 1.1 * (x[:3] - 2.0) + 0.2 * (x[:3] - 2.0) ** 2)
+    assert y[4] - y[3] == pytest.approx(1.1)
+    assert y[6] - y[5] == pytest.approx(1.1)
+
+
+def test_ridge_huber_fit_matches_scipy_least_squares():
+    # reference library: scipy.optimize.least_squares, loss="huber", on the scaled
+    # residuals plus the ridge residuals sqrt(ridge) beta / (c scale) (inside Huber's
+    # quadratic zone, so they add ridge beta^2 to the objective, as our IRLS does)
+    from scipy.optimize import least_squares
+
+    from retpred.calibration import HUBER_C, huber_fit
+
+    rng = np.random.default_rng(7)
+    u = rng.uniform(-1.5, 1.5, 14)
+    w = rng.uniform(0.5, 3.0, 14)
+    a_mat = np.column_stack([np.ones_like(u), u, u * u])
+    r = 0.1 + 0.2 * u + 0.15 * u * u + rng.normal(0, 0.03, 14)
+    r[[3, 10]] += [0.7, -0.5]
+    scale, ridge = 0.1, np.array([0.0, 0.0, 0.3])
+    beta = huber_fit(a_mat, r, w, scale, ridge=ridge)
+    cs = HUBER_C * scale
+
+    def resid(p):
+        return np.concatenate([w * (r - a_mat @ p) / cs, np.sqrt(ridge) * p / cs])
+
+    ref = least_squares(resid, np.zeros(3), loss="huber", f_scale=1.0, xtol=1e-14,
+                        ftol=1e-14, gtol=1e-14)
+    assert np.all(np.abs(np.sqrt(ridge) * ref.x / cs) < 1.0)
+    np.testing.assert_allclose(beta, ref.x, atol=1e-7)
