@@ -82,7 +82,7 @@ READABLE_FORMATS = (2, 3)
 SLOPE_BOUNDS = (0.5, 2.0)
 MIN_LINEAR = 3
 MIN_MONOTONE = 10
-MIN_QUADRATIC = 10
+MIN_QUADRATIC = 8
 #: ridge on the quadratic kind's curvature (insensitive: 0.1-1 gave the same medians)
 CURVATURE_RIDGE = 0.3
 MIN_SELECTIVITY = 6
@@ -492,8 +492,10 @@ def _quadratic(x: np.ndarray, y: np.ndarray, w: np.ndarray | None) -> Calibratio
     """``y - x = a + b u + c u^2`` (``u = x - median x``), a Huber fit of the time-weighted
     residuals as for the linear kind (:func:`_line`: same weights, same fixed scale) with
     the ridge ``CURVATURE_RIDGE`` on ``c``; straight beyond the calibrants' span of ``u``.
-    A curvature in ``log kw`` space that a line cannot take: on the open data's left-out
-    systems it lowers the 10-calibrant median (DEVELOPERS.md, "Calibration blend")."""
+    The slope is bounded as the linear kind's and the curvature so that the map stays
+    monotone. A curvature in ``log kw`` space that a line cannot take: on the open data's
+    left-out systems it lowers the 10-calibrant median (DEVELOPERS.md, "Calibration
+    blend")."""
     pivot = float(np.median(x))
     u = x - pivot
     ww = np.ones_like(x) if w is None else np.asarray(w, dtype=float)
@@ -502,9 +504,16 @@ def _quadratic(x: np.ndarray, y: np.ndarray, w: np.ndarray | None) -> Calibratio
     scale = 1.4826 * float(np.median(np.abs(t_res - np.median(t_res))))
     a, b, c = huber_fit(np.column_stack([np.ones_like(u), u, u * u]), y - x, ww, scale,
                         ridge=np.array([0.0, 0.0, CURVATURE_RIDGE]))
-    return CalibrationMap(kind="quadratic", offset=pivot + float(a), slope=1.0 + float(b),
-                          pivot=pivot, curvature=float(c),
-                          curve_range=(float(u.min()), float(u.max())))
+    lo, hi = float(u.min()), float(u.max())
+    slope = float(np.clip(1.0 + b, *SLOPE_BOUNDS))
+    # monotone, never flatter than the lowest slope allowed: slope + 2 c u >= SLOPE_BOUNDS[0]
+    # at both ends of the span (a map that turns back would swap analytes' order)
+    room = slope - SLOPE_BOUNDS[0]
+    c_max = room / (-2.0 * lo) if lo < 0 else np.inf
+    c_min = -room / (2.0 * hi) if hi > 0 else -np.inf
+    return CalibrationMap(kind="quadratic", offset=pivot + float(a), slope=slope,
+                          pivot=pivot, curvature=float(np.clip(c, c_min, c_max)),
+                          curve_range=(lo, hi))
 
 
 def candidate_kinds(n: int, with_traits: bool = False) -> list[str]:

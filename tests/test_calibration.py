@@ -57,7 +57,7 @@ def test_planted_shift_recovered(prog):
 
 
 def test_planted_slope_weights_linear_and_is_recovered(prog):
-    pred, obs, rt, s = _case(prog, 8, shift=0.2, slope=1.3)
+    pred, obs, rt, s = _case(prog, 7, shift=0.2, slope=1.3)  # below MIN_QUADRATIC
     cal = fit_calibration(pred, obs, rt, lambda v: elute(v, s, prog).rt_min)
     assert cal.kind == "blend" and {m.kind for m in cal.maps} == {"unchanged", "shift",
                                                                    "linear"}
@@ -569,9 +569,9 @@ def test_planted_curvature_is_recovered_and_weighted(prog, monkeypatch):
     exact = fit_calibration(pred, obs, rt, rt_of).map_of("quadratic")
     assert exact.curvature == pytest.approx(0.15, abs=1e-8)
     assert exact.slope == pytest.approx(1.1, abs=1e-8)
-    # no quadratic candidate below ten calibrants
-    assert "quadratic" not in fit_calibration(pred[:9], obs[:9], rt[:9], lambda v: elute(
-        v, s[:9], prog).rt_min).loo_errors_min
+    # no quadratic candidate below eight calibrants
+    assert "quadratic" not in fit_calibration(pred[:7], obs[:7], rt[:7], lambda v: elute(
+        v, s[:7], prog).rt_min).loo_errors_min
 
 
 def test_quadratic_map_is_straight_beyond_the_calibrants():
@@ -610,3 +610,20 @@ def test_ridge_huber_fit_matches_scipy_least_squares():
                         ftol=1e-14, gtol=1e-14)
     assert np.all(np.abs(np.sqrt(ridge) * ref.x / cs) < 1.0)
     np.testing.assert_allclose(beta, ref.x, atol=1e-7)
+
+
+
+def test_strongly_curved_standards_still_give_a_monotone_map(prog):
+    """A map of log kw that turned back would swap two analytes' elution order; the
+    quadratic kind's curvature is bounded so that its slope stays at or above the lowest
+    slope allowed (SLOPE_BOUNDS[0]) over the calibrants' span."""
+    from retpred.calibration import SLOPE_BOUNDS
+
+    pred, obs, rt, s = _curved_case(prog, curvature=1.0)  # slope 1.1 - 2 u_max: turns back
+    quad = fit_calibration(pred, obs, rt, lambda v: elute(v, s, prog).rt_min
+                           ).map_of("quadratic")
+    x = np.linspace(pred.min() - 1.0, pred.max() + 1.0, 2000)
+    assert np.all(np.diff(quad.apply(x)) / np.diff(x) >= SLOPE_BOUNDS[0] - 1e-9)
+    # the bound is active: the unconstrained parabola would have a negative slope there
+    lo, hi = quad.curve_range
+    assert min(1.1 + 2.0 * lo, 1.1 + 2.0 * hi) < 0
