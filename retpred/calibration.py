@@ -435,14 +435,19 @@ def _line(x: np.ndarray, y: np.ndarray, w: np.ndarray | None) -> tuple[float, fl
     slope = float(np.clip(res.slope, *SLOPE_BOUNDS))
     if w is None or x.size < MIN_LINEAR:
         return float(np.median(y - slope * (x - pivot))), slope, pivot
-    t_res = w * (y - res.intercept - res.slope * x)
-    scale = 1.4826 * float(np.median(np.abs(t_res - np.median(t_res))))
-    a, b = huber_line(x - pivot, y - x, w, scale)
+    a, b = huber_line(x - pivot, y - x, w, _time_scale(res, x, y, w))
     slope = 1.0 + b
     if SLOPE_BOUNDS[0] <= slope <= SLOPE_BOUNDS[1]:
         return pivot + a, slope, pivot
     slope = float(np.clip(slope, *SLOPE_BOUNDS))
     return weighted_median(y - slope * (x - pivot), w), slope, pivot
+
+
+def _time_scale(rm, x: np.ndarray, y: np.ndarray, w: np.ndarray) -> float:
+    """The Huber fits' fixed scale: 1.4826 x the median absolute deviation of the time
+    residuals ``w (y - line)`` of the repeated-median line ``rm`` (``siegelslopes``)."""
+    t_res = w * (y - rm.intercept - rm.slope * x)
+    return 1.4826 * float(np.median(np.abs(t_res - np.median(t_res))))
 
 
 def weighted_median(v: np.ndarray, w: np.ndarray) -> float:
@@ -499,9 +504,7 @@ def _quadratic(x: np.ndarray, y: np.ndarray, w: np.ndarray | None) -> Calibratio
     pivot = float(np.median(x))
     u = x - pivot
     ww = np.ones_like(x) if w is None else np.asarray(w, dtype=float)
-    rm = siegelslopes(y, x)
-    t_res = ww * (y - rm.intercept - rm.slope * x)
-    scale = 1.4826 * float(np.median(np.abs(t_res - np.median(t_res))))
+    scale = _time_scale(siegelslopes(y, x), x, y, ww)
     a, b, c = huber_fit(np.column_stack([np.ones_like(u), u, u * u]), y - x, ww, scale,
                         ridge=np.array([0.0, 0.0, CURVATURE_RIDGE]))
     lo, hi = float(u.min()), float(u.max())
