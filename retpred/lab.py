@@ -38,6 +38,7 @@ from retpred.model import (
 )
 from retpred.modelfile import default_model_path, load_model, save_model, sha256_file
 from retpred.predict import prepare
+from retpred.training import void_bound_log_kw
 
 MIN_COMPOUNDS = 20
 
@@ -88,31 +89,52 @@ def _apply(lin, gbm, base, x):
     return out
 
 
+def _fit_censored(base: np.ndarray, obs: np.ndarray, x: np.ndarray, upper: np.ndarray,
+                  kind: str):
+    """:func:`_fit_correction` on the retained rows (finite ``obs``), then, if any row has
+    only an upper bound (finite ``upper``: eluted at or near t0), refitted with those rows
+    at the target ``min(mu, b)``, ``mu`` the first fit's value: the same censored-regression
+    step as the training data's void rows and the calibration's void standards
+    (DEVELOPERS.md, "Void rows")."""
+    retained = np.isfinite(obs)
+    lin, gbm = _fit_correction(base[retained], obs[retained], x[retained], kind)
+    void = np.isfinite(upper) & ~retained
+    if kind == "shipped_zero_shot" or not void.any():
+        return lin, gbm
+    y = obs.copy()
+    y[void] = np.minimum(_apply(lin, gbm, base[void], x[void]), upper[void])
+    use = retained | void
+    return _fit_correction(base[use], y[use], x[use], kind)
+
+
 def select_correction(base_lk: np.ndarray, obs_lk: np.ndarray, x: np.ndarray,
-                      obs_rt: np.ndarray, rt_of, n_splits: int = 5, seed: int = 0):
+                      obs_rt: np.ndarray, rt_of, n_splits: int = 5, seed: int = 0,
+                      upper_lk: np.ndarray | None = None):
     """Choose the correction by ``n_splits``-fold cross-validation over compounds and fit it.
 
     ``obs_lk`` is NaN for compounds measured at or before the dead time: they have no
     log kw to fit, but they are measurements all the same and count in the cross-validated
     time error (a correction fitted on the retained compounds alone is biased towards more
-    retention and would move the unretained ones later). ``rt_of(log_kw, sel)`` gives the
-    times of the rows ``sel`` on their own methods. The simplest candidate within
-    ``SELECT_TOLERANCE`` of the lowest median |error| wins and is refitted on every retained
-    compound. Returns ``(kind, {kind: CV median |error| min}, line, gbm)``.
+    retention and would move the unretained ones later). ``upper_lk`` (NaN elsewhere) is the
+    upper bound on ``log kw`` of compounds eluting at or near t0
+    (:func:`retpred.training.void_bound_log_kw`); they enter every fit as censored rows
+    (:func:`_fit_censored`). ``rt_of(log_kw, sel)`` gives the times of the rows ``sel`` on
+    their own methods. The simplest candidate within ``SELECT_TOLERANCE`` of the lowest
+    median |error| wins and is refitted on every compound. Returns
+    ``(kind, {kind: CV median |error| min}, line, gbm)``.
     """
-    retained = np.isfinite(obs_lk)
+    upper = np.full(base_lk.size, np.nan) if upper_lk is None else np.asarray(upper_lk, float)
     folds = KFold(n_splits=n_splits, shuffle=True, random_state=seed)
     errs = {k: [] for k in CANDIDATES}
     for tr, te in folds.split(base_lk):
-        tr = tr[retained[tr]]
         for kind in CANDIDATES:
-            lin, gbm = _fit_correction(base_lk[tr], obs_lk[tr], x[tr], kind)
+            lin, gbm = _fit_censored(base_lk[tr], obs_lk[tr], x[tr], upper[tr], kind)
             pred = _apply(lin, gbm, base_lk[te], x[te])
             errs[kind].append(np.abs(rt_of(pred, te) - obs_rt[te]))
     metrics = {k: float(np.nanmedian(np.concatenate(v))) for k, v in errs.items()}
     lowest = min(metrics.values())
     best = next(k for k in CANDIDATES if metrics[k] <= (1 + SELECT_TOLERANCE) * lowest)
-    lin, gbm = _fit_correction(base_lk[retained], obs_lk[retained], x[retained], best)
+    lin, gbm = _fit_censored(base_lk, obs_lk, x, upper, best)
     return best, metrics, lin, gbm
 
 
@@ -146,16 +168,19 @@ def train_lab_model(
     which = np.asarray(rows_method)
     base_lk = np.full(rt.size, np.nan)
     obs_lk = np.full(rt.size, np.nan)
+    upper_lk = np.full(rt.size, np.nan)
     s = np.full(rt.size, np.nan)
     meoh = np.zeros(rt.size)
     for j, prep in enumerate(preps):
         m = which == j
         lk, ss = base.retention_parameters(sol, prep.context, idx=np.flatnonzero(m))
         base_lk[m], s[m] = lk, ss
-        obs_lk[m] = log_kw_from_rt(rt[m], ss, prep.program)
+        upper_lk[m] = void_bound_log_kw(rt[m], ss, prep.program)
+        obs_lk[m] = np.where(np.isfinite(upper_lk[m]), np.nan,
+                             log_kw_from_rt(rt[m], ss, prep.program))
         meoh[m] = 1.0 if prep.context.organic == "methanol" else 0.0
-    # compounds eluting at or before t0 (no log kw) still count in the choice: see
-    # select_correction
+    # compounds eluting at or near t0 (a bound, not a log kw) and before it (nothing)
+    # still count in the choice: see select_correction
     usable = np.isfinite(base_lk)
     n_ok = int((usable & np.isfinite(obs_lk)).sum())
     if n_ok < MIN_COMPOUNDS:
@@ -174,7 +199,8 @@ def train_lab_model(
                 res[m] = elute(lk[m], s[idx][sel][m], prep.program).rt_min
         return res
 
-    best, metrics, lin, gbm = select_correction(b, o, x, rt[idx], rt_of)
+    best, metrics, lin, gbm = select_correction(b, o, x, rt[idx], rt_of,
+                                                upper_lk=upper_lk[idx])
     lab = copy.copy(base)
     lab.lab_neighbours_ = lin.pop("neighbours", None)
     lab.lab_linear_ = lin
@@ -186,6 +212,7 @@ def train_lab_model(
         "lab_training_sha256": data_fingerprint(*(Path(p).read_bytes() for p in data)),
         "lab_n_compounds": n_ok,
         "lab_n_unretained": int(np.isnan(o).sum()),
+        "lab_n_near_t0": int(np.isfinite(upper_lk[idx]).sum()),
         "lab_cv_median_abs_error_min": metrics,
         "lab_correction": {"lab_linear": "linear", "lab_model": "linear + gradient boosting",
                            "lab_neighbours": "linear + neighbours",
