@@ -65,7 +65,7 @@ from retpred.method import HsmParameters
 from retpred.structures import StandardisedBatch, standardise_mols, standardise_smiles
 
 #: Model-file format version; a file of another format is refused.
-MODEL_FORMAT = 8
+MODEL_FORMAT = 9
 N_BITS = 256
 #: Snyder and Dolan's rule of thumb S = 0.25 M^0.5 (retention-physics.md section 2).
 S_RULE_COEF = 0.25
@@ -407,6 +407,13 @@ class RetentionModel:
     #: isomers that are} (see :func:`stereo_forms`)
     skeleton_memory_: dict = field(default_factory=dict)
     skeleton_factors_: dict = field(default_factory=dict)
+    #: the offset-free companion (``retpred.training.fit_model``): ridge, boosting and
+    #: compound memory refitted on targets without each training system's mean residual;
+    #: the learned part of ``log kw`` is the mean of the model's own and the companion's
+    companion_ridge_: Ridge | None = None
+    companion_gbm_: HistGradientBoostingRegressor | None = None
+    companion_memory_: dict = field(default_factory=dict)
+    companion_skeleton_memory_: dict = field(default_factory=dict)
 
     # --- prediction ------------------------------------------------------------------
     def retention_parameters(
@@ -434,12 +441,8 @@ class RetentionModel:
             z = column_features(solutes, idx, arr, ion, self.reference)
             x = solute_matrix(solutes, idx, arr["meoh"])
             lin = np.column_stack([z[ok], solutes.descriptors[idx][ok]])
-            # einsum, not BLAS: the result must not depend on the batch size (exact ties
-            # between identical structures decide elution order in every run mode)
-            ridge = np.einsum("ij,j->i", lin, self.ridge_.coef_) + self.ridge_.intercept_
-            pred = self.gbm_.predict(x[ok]) + ridge + fixed[ok]
-            if self.memory_:
-                pred = pred + self.memory_offsets(solutes, idx[ok])
+            pred = (self.boosted_term(x[ok]) + self.ridge_term(lin) + fixed[ok]
+                    + self.memory_offsets(solutes, idx[ok]))
             if self.lab_linear_ is not None:
                 pred = self.apply_lab(pred, x[ok])
             log_kw[ok] = pred
@@ -456,12 +459,44 @@ class RetentionModel:
             got = skeleton.get(sk, exact.get(sk))
         return got
 
+    def _members(self) -> list[tuple]:
+        """``(ridge, boosting, memory, skeleton memory)`` of the model and, if fitted, of its
+        offset-free companion; every learned term is their mean."""
+        parts = [(self.ridge_, self.gbm_, self.memory_, self.skeleton_memory_)]
+        if self.companion_gbm_ is not None:
+            parts.append((self.companion_ridge_, self.companion_gbm_, self.companion_memory_,
+                          self.companion_skeleton_memory_))
+        return parts
+
+    def boosted_term(self, x: np.ndarray) -> np.ndarray:
+        """The boosting's term of rows ``x`` (:func:`solute_matrix`)."""
+        return np.mean([g.predict(x) for _, g, _, _ in self._members()], axis=0)
+
+    def ridge_term(self, lin: np.ndarray) -> np.ndarray:
+        """The ridge's term of rows ``lin`` (column terms and descriptor main effects)."""
+        # einsum, not BLAS: the result must not depend on the batch size (exact ties
+        # between identical structures decide elution order in every run mode)
+        return np.mean([np.einsum("ij,j->i", lin, r.coef_) + r.intercept_
+                        for r, _, _, _ in self._members()], axis=0)
+
     def memory_offsets(self, solutes: Solutes, idx: np.ndarray) -> np.ndarray:
         """Compound-memory offset ``u`` of rows ``idx`` (0 for structures not in training,
         stereoisomers aside: see :meth:`_lookup`)."""
-        mem, skel = self.memory_, self.skeleton_memory_
-        return np.array([self._lookup(mem, skel, solutes, i) or 0.0 for i in idx],
-                        dtype=float)
+        idx = np.asarray(idx)
+        out = np.zeros(idx.size)
+        members = self._members()
+        for _, _, mem, skel in members:
+            if mem:
+                out += [self._lookup(mem, skel, solutes, i) or 0.0 for i in idx]
+        return out / len(members)
+
+    def set_companion(self, other: RetentionModel) -> RetentionModel:
+        """Take ``other``'s ridge, boosting and compound memory as the companion; returns
+        ``self``."""
+        self.companion_ridge_, self.companion_gbm_ = other.ridge_, other.gbm_
+        self.companion_memory_ = other.memory_
+        self.companion_skeleton_memory_ = other.skeleton_memory_
+        return self
 
     def factor_matrix(self, solutes: Solutes, idx: np.ndarray | None = None) -> np.ndarray:
         """(rows, rank) compound factors of rows ``idx`` (default all); zeros for structures
@@ -581,6 +616,8 @@ class RetentionModel:
         self.ridge_ = ridge
         self.gbm_ = gbm
         self.lab_linear_ = self.lab_gbm_ = self.lab_neighbours_ = None
+        self.companion_ridge_ = self.companion_gbm_ = None
+        self.companion_memory_, self.companion_skeleton_memory_ = {}, {}
         self.memory_, self.factors_ = {}, {}
         self.skeleton_memory_, self.skeleton_factors_ = {}, {}
         self.domain_ = fit_domain(solutes.descriptors[np.unique(idx)])

@@ -45,7 +45,7 @@ _STATE_FIELDS = (
     "ion_drop_acid", "ion_drop_base", "ion_drop_pair", "gbm_max_iter", "gbm_learning_rate",
     "ridge_alpha", "random_state", "residual_quantiles_", "residual_sd_", "metrics_", "meta_",
     "lab_linear_", "domain_", "lab_neighbours_", "memory_", "factors_", "skeleton_memory_",
-    "skeleton_factors_",
+    "skeleton_factors_", "companion_memory_", "companion_skeleton_memory_",
 )
 
 
@@ -71,6 +71,8 @@ def save_model(model: RetentionModel, path: Path) -> None:
         "ridge": model.ridge_,
         "gbm": model.gbm_,
         "lab_gbm": model.lab_gbm_,
+        "companion_ridge": model.companion_ridge_,
+        "companion_gbm": model.companion_gbm_,
     }
     sio.dump(payload, path)
 
@@ -137,5 +139,7 @@ def load_model(path: str | Path | None = None, *, check_sha: bool = True) -> Ret
     model.ridge_ = payload["ridge"]
     model.gbm_ = payload["gbm"]
     model.lab_gbm_ = payload.get("lab_gbm")
+    model.companion_ridge_ = payload.get("companion_ridge")
+    model.companion_gbm_ = payload.get("companion_gbm")
     model.meta_ = {**model.meta_, "path": str(p)}
     return model

@@ -334,7 +334,7 @@ def _fast_grid(model: RetentionModel, solutes: Solutes, contexts: list[SystemCon
     meoh_k = np.array([1.0 if c.organic == "methanol" else 0.0 for c in contexts])
     g = np.empty((k, m))
     for val in np.unique(meoh_k):
-        g[meoh_k == val] = model.gbm_.predict(solute_matrix(solutes, okidx, np.full(m, val)))
+        g[meoh_k == val] = model.boosted_term(solute_matrix(solutes, okidx, np.full(m, val)))
     which = np.repeat(np.arange(k), m)
     idx = np.tile(okidx, k)
     arr = context_arrays(contexts, which)
@@ -345,7 +345,8 @@ def _fast_grid(model: RetentionModel, solutes: Solutes, contexts: list[SystemCon
     # the ridge sees the HSM-style terms, or those plus the descriptor main effects
     lin = z if n_in == z.shape[1] else np.column_stack([z, solutes.descriptors[idx]])
     fixed = model.fixed_terms(arr, ion)
-    pred = g.reshape(-1) + model.ridge_.predict(lin) + fixed
+    pred = (g.reshape(-1) + model.ridge_term(lin) + fixed
+            + np.tile(model.memory_offsets(solutes, okidx), k))
     if model.lab_linear_ is not None:
         pred = model.apply_lab(pred, solute_matrix(solutes, idx, arr["meoh"]))
     out = np.full((k, len(solutes)), np.nan)

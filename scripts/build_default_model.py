@@ -54,6 +54,7 @@ from retpred.model import data_fingerprint, now_utc  # noqa: E402
 from retpred.modelfile import DEFAULT_MODEL_NAME, MODELS_DIR, save_model, sha256_file  # noqa: E402
 from retpred.opendata import find_open_data, not_found_message  # noqa: E402
 from retpred.training import (  # noqa: E402
+    COMPANION_SHRINK,
     MIN_RT_OVER_T0,
     fit_model,
     load_open_training_set,
@@ -288,6 +289,13 @@ measured by other sources than the left-out one is remembered from those). A ste
 that training does not hold takes the mean of those it does
 ({summary.get('n_skeleton_forms')} stereo-blind forms). It is one constant per compound, so
 it does not change a predicted pH or column shift.
+
+Offset-free companion: every learned term (ridge, boosting, compound memory) is the mean of
+two fits on the same rows, the model's own and a companion fitted after each training
+system's mean residual (shrunk by n / (n + {COMPANION_SHRINK:g}) for a system of n rows; dead-time,
+dwell-volume and batch errors that the method description cannot explain) was taken out
+of its targets (`retpred/training.py`, `fit_model`; DEVELOPERS.md, "Offset-free
+companion").
 
 Calibration (the 10-calibrant figures): the predicted log kw unchanged and its shift,
 linear, selectivity (log P and TPSA terms), monotone and quadratic maps, each followed by the

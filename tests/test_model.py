@@ -394,13 +394,16 @@ def test_learned_charge_terms_keep_a_visible_monotone_ion_drop(small_model):
     # section 4)
     from retpred.model import COLUMN_TERM_NAMES
 
-    c = dict(zip(COLUMN_TERM_NAMES, small_model.ridge_.coef_, strict=False))
-    f0 = np.linspace(0.0, 1.0, 2001)
-    for charge, drop in (("cation", small_model.ion_drop_base),
-                         ("anion", small_model.ion_drop_acid)):
-        for coef in (c[charge], c[charge] + c[f"methanol*{charge}"]):
-            assert coef <= 0.5 * drop + 1e-9
-            assert np.all(np.diff(_single_site_log_k(f0, drop, coef)) >= -1e-9)
+    # (the model's ridge and its offset-free companion's, whose mean the model uses)
+    assert small_model.companion_ridge_ is not None
+    for ridge in (small_model.ridge_, small_model.companion_ridge_):
+        c = dict(zip(COLUMN_TERM_NAMES, ridge.coef_, strict=False))
+        f0 = np.linspace(0.0, 1.0, 2001)
+        for charge, drop in (("cation", small_model.ion_drop_base),
+                             ("anion", small_model.ion_drop_acid)):
+            for coef in (c[charge], c[charge] + c[f"methanol*{charge}"]):
+                assert coef <= 0.5 * drop + 1e-9
+                assert np.all(np.diff(_single_site_log_k(f0, drop, coef)) >= -1e-9)
 
 
 # --- stereoisomers in the compound memory ------------------------------------------------
@@ -514,3 +517,37 @@ def test_stereo_forms_from_the_standardised_molecule_match_those_of_its_smiles()
     ])
     for mol, smiles in zip(batch.mols, batch.smiles, strict=True):
         assert stereo_forms_of(mol, smiles) == stereo_forms(smiles), smiles
+
+
+# --- the offset-free companion (retpred.training.fit_model) -------------------------------
+
+
+def test_system_offsets_are_shrunken_means_by_hand():
+    from retpred.training import system_offsets
+
+    resid = np.array([1.0, 1.0, np.nan, 2.0, 4.0])
+    systems = np.array([0, 0, 0, 1, 1])
+    # sum r / (n + shrink), NaN skipped: (1 + 1) / (2 + 5), (2 + 4) / (2 + 5); none: 0
+    np.testing.assert_allclose(system_offsets(resid, systems, 3, shrink=5.0),
+                               [2 / 7, 6 / 7, 0.0], rtol=1e-12)
+
+
+def test_prediction_is_the_mean_of_the_model_and_its_companion(small_model,
+                                                               small_training_set):
+    ts = small_training_set
+    assert small_model.companion_gbm_ is not None
+    own = dataclasses.replace(small_model, companion_ridge_=None, companion_gbm_=None,
+                              companion_memory_={}, companion_skeleton_memory_={})
+    other = dataclasses.replace(
+        own, ridge_=small_model.companion_ridge_, gbm_=small_model.companion_gbm_,
+        memory_=small_model.companion_memory_,
+        skeleton_memory_=small_model.companion_skeleton_memory_)
+    rows = np.arange(0, ts.rt_min.size, 7)
+    args = (ts.solutes, ts.contexts, ts.system_idx[rows], ts.solute_idx[rows])
+    a, b, both = (m.retention_parameters(*args)[0] for m in (own, other, small_model))
+    ok = np.isfinite(both)
+    assert ok.mean() > 0.95
+    # two different fits (the companion's targets lack the systems' offsets) ...
+    assert np.std(a[ok] - b[ok]) > 0.02
+    # ... whose learned terms are averaged (the fixed column and ion terms are shared)
+    np.testing.assert_allclose(both[ok], 0.5 * (a[ok] + b[ok]), rtol=0, atol=1e-9)

@@ -77,11 +77,14 @@ def hh_model(small_model):
     """The small model with its learned linear charge terms switched off, so that pH acts
     only through the species-weighted Henderson-Hasselbalch term (the closed-form case)."""
     m = copy.deepcopy(small_model)
-    coef = m.ridge_.coef_.copy()
-    for name in ("cation", "anion", "dC*cation", "cation*anion",
-                 "methanol*cation", "methanol*anion"):
-        coef[COLUMN_TERM_NAMES.index(name)] = 0.0
-    m.ridge_.coef_ = coef
+    for ridge in (m.ridge_, m.companion_ridge_):  # the model's and its companion's
+        if ridge is None:
+            continue
+        coef = ridge.coef_.copy()
+        for name in ("cation", "anion", "dC*cation", "cation*anion",
+                     "methanol*cation", "methanol*anion"):
+            coef[COLUMN_TERM_NAMES.index(name)] = 0.0
+        ridge.coef_ = coef
     return m
 
 
@@ -198,6 +201,22 @@ def test_fast_path_equals_model_and_prediction_path(small_model, demo_dir):
             method, mobile_phase=mp), small_model), sol, names), small_model)
         np.testing.assert_allclose(res.rt_min[i], table["rt_min"].to_numpy(float), atol=1e-9)
         assert res.min_resolution[i] == pytest.approx(np.nanmin(table["resolution_next"]))
+
+
+def test_fast_grid_carries_the_compound_memory(small_model, small_training_set):
+    # structures of the training data have a compound-memory offset; the fast grid must add
+    # it (and average the companion's terms) as the model's own path does, or every scan of
+    # known compounds falls back to the slow path
+    from retpred.scan import _fast_grid
+
+    ts = small_training_set
+    known = np.flatnonzero(small_model.known(ts.solutes))[:40]
+    assert np.abs(small_model.memory_offsets(ts.solutes, known)).max() > 0.05
+    ctxs = [dataclasses.replace(ts.contexts[0], ph=p) for p in (2.5, 4.5, 7.0)]
+    grid = _fast_grid(small_model, ts.solutes, ctxs, known)
+    for i, c in enumerate(ctxs):
+        ref = small_model.retention_parameters(ts.solutes, c, idx=known)[0]
+        np.testing.assert_allclose(grid[i, known], ref, rtol=0, atol=1e-9)
 
 
 def test_scan_50_analytes_61_points_is_fast(small_model, open_data):
