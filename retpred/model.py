@@ -480,8 +480,9 @@ class RetentionModel:
                         for r, _, _, _ in self._members()], axis=0)
 
     def memory_offsets(self, solutes: Solutes, idx: np.ndarray) -> np.ndarray:
-        """Compound-memory offset ``u`` of rows ``idx`` (0 for structures not in training,
-        stereoisomers aside: see :meth:`_lookup`)."""
+        """Compound-memory offset ``u`` of rows ``idx``: the mean of the model's and its
+        companion's (:meth:`_members`), each 0 for structures not in training,
+        stereoisomers aside (see :meth:`_lookup`)."""
         idx = np.asarray(idx)
         out = np.zeros(idx.size)
         members = self._members()
