@@ -202,6 +202,11 @@ def model_card(summary: dict, meta: dict, table, sha: str, seconds: float) -> st
         v = summary.get(k, float("nan"))
         return f"{v:.{d}f}"
 
+    def count(k):
+        # Counted on the fitted model; --validate-only fits none.
+        v = summary.get(k)
+        return "" if v is None else f"{v} "
+
     spec = [
         ("zero-shot MedAE, % of last rt", "zero_medae_pct", "gbm_zero_medae_pct", None, 1),
         ("10 calibrants MedAE, % of last rt", "cal_medae_pct", "gbm_cal_medae_pct",
@@ -280,14 +285,14 @@ is right for {f('ph_shift_sign_agreement_ionising', 3)}. Additive terms (ion-pai
 buffer salt) were tried and dropped: the neutral compounds' shifts with the buffer do not
 share a direction across sources, and the terms made the errors worse.
 
-Compound memory: for the {summary.get('n_memory_compounds')} structures of the training
+Compound memory: for the {count('n_memory_compounds')}structures of the training
 data, the model keeps the shrunken mean of their training residuals (after each system's
 offset), keyed by a hash of the standardised SMILES (enantiomers and their racemate share
 one entry, since an achiral column retains them alike, while diastereomers keep their own;
 salt forms pool with their parent); the left-out-source figures above include it (a compound
 measured by other sources than the left-out one is remembered from those). A stereoisomer
 that training does not hold takes the mean of those it does
-({summary.get('n_skeleton_forms')} stereo-blind forms). It is one constant per compound, so
+({count('n_skeleton_forms')}stereo-blind forms). It is one constant per compound, so
 it does not change a predicted pH or column shift.
 
 Offset-free companion: every learned term (ridge, boosting, compound memory) is the mean of
