@@ -13,9 +13,9 @@ prefers the source split: with it, no other system of a left-out system's lab, c
 or pH series is in training). The build itself always splits by source.
 ``--draws`` sets how many random sets of 10 calibrants each left-out system draws (the
 figures are averaged over them; 5 by default, which is what the model card reports) and
-``--seed`` the generator they come from. With ``--draws 20`` the 10-calibrant median is the
-average over 20 draws that issue 5's target asks for, with a quarter of the draw-to-draw
-noise of the default (four times the calibrations: 13 minutes for the whole run against 8
+``--seed`` the generator they come from. With ``--draws 20`` the 10-calibrant median is
+averaged over 20 draws per system, with a quarter of the draw-to-draw variance of the
+default (four times the calibrations: 13 minutes for the whole run against 8
 on a quiet 2-core machine, December 2026).
 
 Steps: load ../shared/datasets/open-rp (or --data / $RETPRED_OPEN_RP) -> invert every
