@@ -42,7 +42,7 @@ from retpred.column import (
     plate_number,
 )
 from retpred.errors import InputError, MethodError
-from retpred.gradient import elute, program_from_method
+from retpred.gradient import STATUS_INVALID, elute, program_from_method
 from retpred.method import PHASE_CLASSES, Column, Method, main_ramp, method_summary
 from retpred.model import (
     RetentionModel,
@@ -494,12 +494,14 @@ def _assemble(method: Method, setting: str, values, names, rt, sigma, plates, st
         iso = 1.0 + np.sqrt(plates_med) / 4.0 * np.log(np.maximum(run, t0_min) / t0_min)
         pc = np.where(ramp > 0, peak_capacity(np.where(ramp > 0, ramp, 1.0), sig_mean), iso)
     n_eluted = np.isfinite(rt).sum(axis=1)
-    not_eluted = (~np.isfinite(rt)).sum()
+    # analytes without retention parameters are named once, by the unusable warning
+    no_time = ~np.isfinite(rt) & (status != STATUS_INVALID)
+    not_eluted = no_time.sum()
     warnings = list(warnings)
     if not_eluted:
-        bad = sorted({names[j] for j in np.flatnonzero((~np.isfinite(rt)).any(axis=0))})
-        warnings.append(f"{not_eluted} analyte-point(s) give no time (not eluted or no "
-                        f"retention parameters): {', '.join(bad[:8])}"
+        bad = sorted({names[j] for j in np.flatnonzero(no_time.any(axis=0))})
+        warnings.append(f"{not_eluted} analyte-point(s) give no time (not eluted): "
+                        f"{', '.join(bad[:8])}"
                         + (" ..." if len(bad) > 8 else ""))
     late = (status == "eluted after program end").any(axis=0)
     if late.any():
@@ -990,7 +992,7 @@ def run_scan(analytes, method_path, *, ph: str | None = None, gradient_time: str
             phase_result.scans[phase_result.summary.loc[0, "phase"]]
         plot_scan(best, Path(plot), force=force, inputs=inputs)
     if not quiet:
-        from retpred.report import make_console
+        from retpred.report import CAUTION, make_console
 
         console = make_console()
         console.print(method_summary(method))
@@ -1020,6 +1022,7 @@ def run_scan(analytes, method_path, *, ph: str | None = None, gradient_time: str
                 if w not in seen:
                     seen.add(w)
                     console.print(f"[yellow]warning:[/] {w}")
+        console.print(f"[dim]{CAUTION}[/]")
         for p in (out, summary_out, plot):
             if p is not None:
                 console.print(f"wrote {p}")

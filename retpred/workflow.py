@@ -33,7 +33,7 @@ from retpred.predict import (
     predict_solutes,
     prepare,
 )
-from retpred.report import make_console, plot_chromatogram, print_report, write_csv
+from retpred.report import CAUTION, make_console, plot_chromatogram, print_report, write_csv
 
 
 def check_outputs(outputs: Sequence[Path | None], inputs: Sequence[Path | None], force: bool):
@@ -237,7 +237,7 @@ def run_columns(analytes, method_path, *, phases=None, model=None, out=None, for
     method = load_method(method_path)
     mdl = load_model(model)
     smiles, names = read_smiles_list(analytes)
-    summary, _ = compare_columns(method, mdl, smiles, names, parse_phases(phases))
+    summary, tables = compare_columns(method, mdl, smiles, names, parse_phases(phases))
     if out is not None:
         flat = summary.copy()
         flat["order"] = flat["order"].map(lambda x: " > ".join(x))
@@ -257,7 +257,30 @@ def run_columns(analytes, method_path, *, phases=None, model=None, out=None, for
                    + (" and resolves all pairs" if best.n_unresolved == 0 else
                       f" but leaves {best.n_unresolved} pair(s) below Rs 1.5"))
         console.print(f"[bold]verdict:[/] {verdict} (smallest Rs {best.min_resolution:.2f}).")
+        for w in [*method.warnings, *columns_warnings(tables)]:
+            console.print(f"[yellow]warning:[/] {w}")
+        console.print("[yellow]note:[/] zero-shot estimates with class-median column "
+                      "parameters; the comparison ranks phases, it does not replace a run on "
+                      "each column")
+        console.print(f"[dim]{CAUTION}[/]")
     return summary
+
+
+def columns_warnings(tables: dict[str, pd.DataFrame]) -> list[str]:
+    """Analytes left out of the comparison: without a predicted time on some phase (the
+    first phase's status names why, e.g. an unparseable SMILES or not eluted)."""
+    missing: dict[str, str] = {}
+    for t in tables.values():
+        for name, rt, status in zip(t["name"], t["rt_min"].astype(float), t["status"],
+                                    strict=True):
+            if not np.isfinite(rt):
+                missing.setdefault(str(name), str(status))
+    if not missing:
+        return []
+    listed = [f"{n} ({s})" for n, s in list(missing.items())[:8]]
+    return [f"{len(missing)} analyte(s) without a predicted time on at least one phase, "
+            "left out of its order and pairs: " + ", ".join(listed)
+            + (" ..." if len(missing) > 8 else "")]
 
 
 # --- calibration and training ------------------------------------------------------------------

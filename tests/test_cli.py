@@ -73,6 +73,25 @@ def test_predict_bad_row_reported_rest_predicted(shipped_model, analytes, demo_d
     assert df["lot"].tolist() == ["A1", "A2", "A3", "A4"]
 
 
+def test_columns_and_scan_name_the_unusable_analyte_and_show_the_caution(
+        shipped_model, analytes, demo_dir, tmp_path):
+    # the comparison ranks the three good analytes; the broken one is named, not dropped
+    # silently, and both method-development commands carry the caution
+    out = tmp_path / "cols.csv"
+    res = run("columns", analytes, "--method", demo_dir / "method.toml", "--phases", "C18,C8",
+              "--out", out)
+    assert res.exit_code == 0, res.output
+    flat = " ".join(res.output.split())
+    assert "broken (unparseable" in flat and "confirm them by injecting" in flat
+    order = pd.read_csv(out)["order"]
+    assert all(len(o.split(" > ")) == 3 and "broken" not in o for o in order)
+    res = run("scan", analytes, "--method", demo_dir / "method.toml", "--ph", "2.5:3.5:0.5")
+    assert res.exit_code == 0, res.output
+    flat = " ".join(res.output.split())
+    assert flat.count("broken") == 1 and "could not be used" in flat
+    assert "confirm them by injecting" in flat
+
+
 def test_output_is_deterministic(shipped_model, analytes, demo_dir, tmp_path):
     a, b = tmp_path / "a.csv", tmp_path / "b.csv"
     for p in (a, b):

@@ -181,6 +181,17 @@ def test_points_outside_column_ph_range_are_skipped(small_model, acid_base):
     assert any("outside the column's usable range" in w for w in res.warnings)
 
 
+def test_unparseable_analyte_is_named_once_and_others_still_scan(small_model):
+    # a broken SMILES (unclosed ring and branch) gets no parameters: it is reported by the
+    # "could not be used" warning only, not again as an analyte that does not elute
+    sol = featurise([BENZOIC_ACID, "C1CC(", BENZYLAMINE])
+    names = ["benzoic acid", "broken", "benzylamine"]
+    res = ph_scan(_method(), small_model, sol, names, parse_range("3:5:1", "x"))
+    assert np.isfinite(res.rt_min[:, [0, 2]]).all() and np.isnan(res.rt_min[:, 1]).all()
+    named = [w for w in res.warnings if "broken" in w]
+    assert len(named) == 1 and "could not be used" in named[0]
+
+
 def test_fast_path_equals_model_and_prediction_path(small_model, demo_dir):
     from retpred.method import load_method
 
