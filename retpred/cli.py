@@ -145,6 +145,8 @@ def columns(
     ] = None,
     model: ModelOpt = None,
     out: Annotated[Path | None, typer.Option(help="Write the comparison as CSV.")] = None,
+    detail_out: Annotated[Path | None, typer.Option(
+        help="CSV: every analyte on every phase (times, widths, resolution, risk).")] = None,
     force: ForceOpt = False,
     quiet: QuietOpt = False,
 ) -> None:
@@ -154,7 +156,7 @@ def columns(
         from retpred import workflow
 
         workflow.run_columns(analytes, method, phases=phases, model=model, out=out,
-                             force=force, quiet=quiet)
+                             detail_out=detail_out, force=force, quiet=quiet)
 
     _run(body)
 

@@ -230,10 +230,20 @@ def compare_columns(method: Method, model: RetentionModel, smiles: list[str], na
     return summary, tables
 
 
-def run_columns(analytes, method_path, *, phases=None, model=None, out=None, force=False,
-                quiet=False):
+def columns_detail(tables: dict[str, pd.DataFrame]) -> pd.DataFrame:
+    """Every analyte on every phase (long form, input order within each phase): the
+    predict columns with the phase first."""
+    parts = []
+    for phase, t in tables.items():
+        cols = [c for c in OUTPUT_COLUMNS if c in t.columns]
+        parts.append(t[cols].assign(phase=phase)[["phase", *cols]])
+    return pd.concat(parts, ignore_index=True)
+
+
+def run_columns(analytes, method_path, *, phases=None, model=None, out=None, detail_out=None,
+                force=False, quiet=False):
     inputs = [analytes, method_path, model]
-    check_outputs([out], inputs, force)
+    check_outputs([out, detail_out], inputs, force)
     method = load_method(method_path)
     mdl = load_model(model)
     smiles, names = read_smiles_list(analytes)
@@ -243,6 +253,8 @@ def run_columns(analytes, method_path, *, phases=None, model=None, out=None, for
         flat["order"] = flat["order"].map(lambda x: " > ".join(x))
         flat["critical_pairs"] = flat["critical_pairs"].map(lambda x: "; ".join(x))
         write_csv(flat, out, force=force, inputs=inputs)
+    if detail_out is not None:
+        write_csv(columns_detail(tables), detail_out, force=force, inputs=inputs)
     if not quiet:
         console = make_console()
         t = Table(title="Column phases on the same method (class-median HSM parameters)")
@@ -263,6 +275,9 @@ def run_columns(analytes, method_path, *, phases=None, model=None, out=None, for
                       "parameters; the comparison ranks phases, it does not replace a run on "
                       "each column")
         console.print(f"[dim]{CAUTION}[/]")
+        for p in (out, detail_out):
+            if p is not None:
+                console.print(f"wrote {p}")
     return summary
 
 

@@ -92,6 +92,33 @@ def test_columns_and_scan_name_the_unusable_analyte_and_show_the_caution(
     assert "confirm them by injecting" in flat
 
 
+def test_columns_detail_matches_predict_on_that_phase(shipped_model, analytes, demo_dir,
+                                                      tmp_path):
+    # the per-phase detail is the prediction path itself: the C8 rows are what `predict`
+    # gives for the method with its phase set to C8, and the summary's order is their order
+    method = tmp_path / "c8.toml"
+    method.write_text((demo_dir / "method.toml").read_text(encoding="utf-8").replace(
+        'phase = "C18"', 'phase = "C8"'), encoding="utf-8")
+    summary, detail, pred = tmp_path / "s.csv", tmp_path / "d.csv", tmp_path / "p.csv"
+    res = run("columns", analytes, "--method", demo_dir / "method.toml", "--phases", "C18,C8",
+              "--out", summary, "--detail-out", detail, "-q")
+    assert res.exit_code == 0, res.output
+    res = run("predict", analytes, "--method", method, "--out", pred, "-q")
+    assert res.exit_code == 0, res.output
+    d = pd.read_csv(detail)
+    assert sorted(d["phase"].unique()) == ["C18", "C8"] and len(d) == 8
+    c8 = d[d["phase"] == "C8"].reset_index(drop=True)
+    p = pd.read_csv(pred)
+    assert c8["name"].tolist() == p["name"].tolist()
+    np.testing.assert_allclose(c8["rt_min"], p["rt_min"], rtol=1e-9, equal_nan=True)
+    np.testing.assert_allclose(c8["peak_width_min"], p["peak_width_min"], rtol=1e-9,
+                               equal_nan=True)
+    s = pd.read_csv(summary).set_index("phase")
+    for phase, rows in d.groupby("phase"):
+        ok = rows[np.isfinite(rows["rt_min"])].sort_values("rt_min")
+        assert s.loc[phase, "order"] == " > ".join(ok["name"])
+
+
 def test_output_is_deterministic(shipped_model, analytes, demo_dir, tmp_path):
     a, b = tmp_path / "a.csv", tmp_path / "b.csv"
     for p in (a, b):
