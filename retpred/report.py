@@ -20,6 +20,12 @@ CAUTION = (
 )
 
 
+def name_list(names, limit: int = 8) -> str:
+    """The first ``limit`` names, comma-separated, with " ..." when there are more."""
+    names = [str(n) for n in names]
+    return ", ".join(names[:limit]) + (" ..." if len(names) > limit else "")
+
+
 def _fmt(x, digits=2) -> str:
     if x is None or (isinstance(x, float) and not math.isfinite(x)) or x is pd.NA:
         return "-"

@@ -42,7 +42,7 @@ from retpred.column import (
     plate_number,
 )
 from retpred.errors import InputError, MethodError
-from retpred.gradient import STATUS_INVALID, elute, program_from_method
+from retpred.gradient import STATUS_AFTER_END, STATUS_INVALID, elute, program_from_method
 from retpred.method import PHASE_CLASSES, Column, Method, main_ramp, method_summary
 from retpred.model import (
     RetentionModel,
@@ -54,6 +54,7 @@ from retpred.model import (
     solute_matrix,
 )
 from retpred.peaks import peak_sigma_min, resolution
+from retpred.report import name_list
 
 #: Baseline separation (common practice; retention-physics.md section 6).
 DEFAULT_RS_TARGET = 1.5
@@ -501,12 +502,11 @@ def _assemble(method: Method, setting: str, values, names, rt, sigma, plates, st
     if not_eluted:
         bad = sorted({names[j] for j in np.flatnonzero(no_time.any(axis=0))})
         warnings.append(f"{not_eluted} analyte-point(s) give no time (not eluted): "
-                        f"{', '.join(bad[:8])}"
-                        + (" ..." if len(bad) > 8 else ""))
-    late = (status == "eluted after program end").any(axis=0)
+                        + name_list(bad))
+    late = (status == STATUS_AFTER_END).any(axis=0)
     if late.any():
         warnings.append("some analytes elute after the program end at some points: "
-                        + ", ".join(names[j] for j in np.flatnonzero(late)[:8]))
+                        + name_list([names[j] for j in np.flatnonzero(late)]))
     if (n_eluted < 2).any():
         warnings.append("fewer than two analytes elute at some points: no resolution there")
     best = _best(min_rs, run)
@@ -549,8 +549,7 @@ def _unusable_warning(solutes: Solutes, names: Sequence[str]) -> list[str]:
     bad = [str(names[i]) for i in np.flatnonzero(~solutes.usable)]
     if not bad:
         return []
-    return [f"{len(bad)} analyte(s) could not be used: {', '.join(bad[:8])}"
-            + (" ..." if len(bad) > 8 else "")]
+    return [f"{len(bad)} analyte(s) could not be used: {name_list(bad)}"]
 
 
 def _check_names(solutes: Solutes, names: Sequence[str]) -> list[str]:

@@ -33,7 +33,14 @@ from retpred.predict import (
     predict_solutes,
     prepare,
 )
-from retpred.report import CAUTION, make_console, plot_chromatogram, print_report, write_csv
+from retpred.report import (
+    CAUTION,
+    make_console,
+    name_list,
+    plot_chromatogram,
+    print_report,
+    write_csv,
+)
 
 
 def check_outputs(outputs: Sequence[Path | None], inputs: Sequence[Path | None], force: bool):
@@ -292,10 +299,9 @@ def columns_warnings(tables: dict[str, pd.DataFrame]) -> list[str]:
                 missing.setdefault(str(name), str(status))
     if not missing:
         return []
-    listed = [f"{n} ({s})" for n, s in list(missing.items())[:8]]
     return [f"{len(missing)} analyte(s) without a predicted time on at least one phase, "
-            "left out of its order and pairs: " + ", ".join(listed)
-            + (" ..." if len(missing) > 8 else "")]
+            "left out of its order and pairs: "
+            + name_list(f"{n} ({s})" for n, s in missing.items())]
 
 
 # --- calibration and training ------------------------------------------------------------------

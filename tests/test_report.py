@@ -7,7 +7,7 @@ from __future__ import annotations
 import pandas as pd
 from rich.console import Console
 
-from retpred.report import print_report
+from retpred.report import name_list, print_report
 
 
 def _table():
@@ -28,3 +28,10 @@ def test_report_names_pairs_and_analytes_at_risk_without_a_partner():
     assert "At risk of co-eluting: a / b" in text
     line = next(x for x in text.splitlines() if "one of several analytes" in x)
     assert line.rstrip().endswith(": c")  # c only: a and b have a partner, d is at 0.1
+
+
+def test_name_list_shows_eight_names_then_marks_the_rest():
+    assert name_list(["a", "b"]) == "a, b"
+    nine = [f"x{i}" for i in range(9)]
+    assert name_list(nine) == ", ".join(nine[:8]) + " ..."
+    assert name_list(iter(nine), limit=9) == ", ".join(nine)
