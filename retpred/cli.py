@@ -131,7 +131,7 @@ def demo(
             force=force, quiet=False,
         )
         workflow.run_columns(DEMO_DIR / "analytes.csv", DEMO_DIR / "method.toml",
-                             phases=None, model=None, quiet=False)
+                             phases=None, model=None, quiet=False, caution=False)
 
     _run(body)
 

@@ -248,7 +248,8 @@ def columns_detail(tables: dict[str, pd.DataFrame]) -> pd.DataFrame:
 
 
 def run_columns(analytes, method_path, *, phases=None, model=None, out=None, detail_out=None,
-                force=False, quiet=False):
+                force=False, quiet=False, caution=True):
+    """The ``columns`` command; ``caution=False`` when the caller has shown it already."""
     inputs = [analytes, method_path, model]
     check_outputs([out, detail_out], inputs, force)
     method = load_method(method_path)
@@ -281,7 +282,8 @@ def run_columns(analytes, method_path, *, phases=None, model=None, out=None, det
         console.print("[yellow]note:[/] zero-shot estimates with class-median column "
                       "parameters; the comparison ranks phases, it does not replace a run on "
                       "each column")
-        console.print(f"[dim]{CAUTION}[/]")
+        if caution:
+            console.print(f"[dim]{CAUTION}[/]")
         for p in (out, detail_out):
             if p is not None:
                 console.print(f"wrote {p}")
