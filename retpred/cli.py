@@ -139,7 +139,9 @@ def demo(
 @app.command()
 def columns(
     analytes: AnalytesArg,
-    method: MethodOpt,
+    method: Annotated[list[Path], typer.Option(
+        "--method", "-m", help="Method file (TOML). Repeat it to compare several methods "
+        "(each with its own column and HSM parameters) as written.")],
     phases: Annotated[
         str | None, typer.Option(help="Comma-separated phase classes (default: all built-in).")
     ] = None,
@@ -150,7 +152,8 @@ def columns(
     force: ForceOpt = False,
     quiet: QuietOpt = False,
 ) -> None:
-    """Compare column phase classes on the same method: order, critical pairs, verdict."""
+    """Compare column phase classes on one method, or several method files: order, critical
+    pairs, verdict."""
 
     def body():
         from retpred import workflow

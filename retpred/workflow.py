@@ -217,19 +217,27 @@ def parse_phases(phases: str | None) -> list[str]:
 def compare_columns(method: Method, model: RetentionModel, smiles: list[str], names: list[str],
                     phases: list[str]) -> tuple[pd.DataFrame, dict[str, pd.DataFrame]]:
     """Predict the same list on each phase class (class-median HSM parameters)."""
+    entries = [(phase, dataclasses.replace(
+        method, column=dataclasses.replace(method.column, phase=phase, hsm=None)))
+        for phase in phases]
+    return compare_methods(entries, model, smiles, names, key="phase")
+
+
+def compare_methods(entries: Sequence[tuple[str, Method]], model: RetentionModel,
+                    smiles: list[str], names: list[str], key: str = "method"
+                    ) -> tuple[pd.DataFrame, dict[str, pd.DataFrame]]:
+    """Predict the same list on each ``(label, method)``; one summary row per label (in
+    column ``key``, with the method's phase class), ranked: fewest pairs below Rs 1.5,
+    then the largest smallest resolution, then the shorter run."""
     sol = featurise(smiles)
     rows, tables = [], {}
-    for phase in phases:
-        col = dataclasses.replace(method.column, phase=phase, hsm=None)
-        m = dataclasses.replace(method, column=col)
-        prep = prepare(m, model)
-        t = predict_solutes(prep, sol, names)
+    for label, m in entries:
+        t = predict_solutes(prepare(m, model), sol, names)
         t["smiles"] = smiles
         t = add_pairs(t, model)
-        tables[phase] = t
-        s = phase_summary(t)
-        rows.append({"phase": phase, **s})
-    # Verdict: fewest unresolved pairs, then the largest smallest resolution, then shorter run.
+        tables[label] = t
+        row = {key: label} if key == "phase" else {key: label, "phase": m.column.phase}
+        rows.append({**row, **phase_summary(t)})
     summary = pd.DataFrame(rows).sort_values(
         ["n_unresolved", "min_resolution", "last_rt_min"], ascending=[True, False, True]
     ).reset_index(drop=True)
@@ -237,51 +245,85 @@ def compare_columns(method: Method, model: RetentionModel, smiles: list[str], na
     return summary, tables
 
 
-def columns_detail(tables: dict[str, pd.DataFrame]) -> pd.DataFrame:
-    """Every analyte on every phase (long form, input order within each phase): the
-    predict columns with the phase first."""
+def columns_detail(tables: dict[str, pd.DataFrame], key: str = "phase") -> pd.DataFrame:
+    """Every analyte on every phase or method (long form, input order within each): the
+    predict columns with the label (column ``key``) first."""
     parts = []
-    for phase, t in tables.items():
+    for label, t in tables.items():
         cols = [c for c in OUTPUT_COLUMNS if c in t.columns]
-        parts.append(t[cols].assign(phase=phase)[["phase", *cols]])
+        parts.append(t[cols].assign(**{key: label})[[key, *cols]])
     return pd.concat(parts, ignore_index=True)
+
+
+def method_labels(paths: Sequence[Path]) -> list[str]:
+    """Short labels for method files: the file names, or the paths where names repeat."""
+    names = [Path(p).name for p in paths]
+    return names if len(set(names)) == len(names) else [str(p) for p in paths]
 
 
 def run_columns(analytes, method_path, *, phases=None, model=None, out=None, detail_out=None,
                 force=False, quiet=False, caution=True):
-    """The ``columns`` command; ``caution=False`` when the caller has shown it already."""
-    inputs = [analytes, method_path, model]
+    """The ``columns`` command; ``caution=False`` when the caller has shown it already.
+
+    ``method_path``: one method file (its column replaced by each phase class of
+    ``phases``), or a list of several, compared as written (each with its own column,
+    HSM parameters, eluent and gradient)."""
+    paths = list(method_path) if isinstance(method_path, list | tuple) else [method_path]
+    several = len(paths) > 1
+    seen = {Path(p).resolve() for p in paths}
+    if len(seen) < len(paths):
+        raise InputError("the same method file is given twice", field="--method")
+    if several and phases:
+        raise InputError("--phases compares phase classes on one method; with several "
+                         "--method files the files are compared as written", field="--phases")
+    inputs = [analytes, *paths, model]
     check_outputs([out, detail_out], inputs, force)
-    method = load_method(method_path)
+    methods = [load_method(p) for p in paths]
+    method = methods[0]
     mdl = load_model(model)
     smiles, names = read_smiles_list(analytes)
-    summary, tables = compare_columns(method, mdl, smiles, names, parse_phases(phases))
+    key = "method" if several else "phase"
+    if several:
+        summary, tables = compare_methods(list(zip(method_labels(paths), methods, strict=True)),
+                                          mdl, smiles, names)
+    else:
+        summary, tables = compare_columns(method, mdl, smiles, names, parse_phases(phases))
     if out is not None:
         flat = summary.copy()
         flat["order"] = flat["order"].map(lambda x: " > ".join(x))
         flat["critical_pairs"] = flat["critical_pairs"].map(lambda x: "; ".join(x))
         write_csv(flat, out, force=force, inputs=inputs)
     if detail_out is not None:
-        write_csv(columns_detail(tables), detail_out, force=force, inputs=inputs)
+        write_csv(columns_detail(tables, key), detail_out, force=force, inputs=inputs)
     if not quiet:
         console = make_console()
-        t = Table(title="Column phases on the same method (class-median HSM parameters)")
-        for c in ("rank", "phase", "smallest Rs", "worst pair", "pairs Rs<1.5", "last peak min"):
+        title = ("Methods compared on the same list (each file's own column and conditions)"
+                 if several else
+                 "Column phases on the same method (class-median HSM parameters)")
+        t = Table(title=title)
+        heads = ["rank", *(["method"] if several else []), "phase", "smallest Rs",
+                 "worst pair", "pairs Rs<1.5", "last peak min"]
+        for c in heads:
             t.add_column(c)
-        for r in summary.itertuples():
-            t.add_row(str(r.rank), r.phase, f"{r.min_resolution:.2f}", r.worst_pair,
-                      str(r.n_unresolved), f"{r.last_rt_min:.2f}")
+        for r in summary.to_dict("records"):
+            t.add_row(str(r["rank"]), *([r["method"]] if several else []), r["phase"],
+                      f"{r['min_resolution']:.2f}", r["worst_pair"], str(r["n_unresolved"]),
+                      f"{r['last_rt_min']:.2f}")
         console.print(t)
         best = summary.iloc[0]
-        verdict = (f"{best.phase} separates this list best"
+        verdict = (f"{best[key]} separates this list best"
                    + (" and resolves all pairs" if best.n_unresolved == 0 else
                       f" but leaves {best.n_unresolved} pair(s) below Rs 1.5"))
         console.print(f"[bold]verdict:[/] {verdict} (smallest Rs {best.min_resolution:.2f}).")
-        for w in [*method.warnings, *columns_warnings(tables)]:
+        method_warnings = ([f"{label}: {w}" for label, m in zip(tables, methods, strict=True)
+                            for w in m.warnings] if several else list(method.warnings))
+        for w in [*method_warnings, *columns_warnings(tables)]:
             console.print(f"[yellow]warning:[/] {w}")
-        console.print("[yellow]note:[/] zero-shot estimates with class-median column "
-                      "parameters; the comparison ranks phases, it does not replace a run on "
-                      "each column")
+        console.print("[yellow]note:[/] zero-shot estimates"
+                      + ("" if several else " with class-median column parameters")
+                      + "; the comparison ranks "
+                      + ("methods" if several else "phases")
+                      + ", it does not replace a run on each column")
         if caution:
             console.print(f"[dim]{CAUTION}[/]")
         for p in (out, detail_out):
@@ -291,8 +333,8 @@ def run_columns(analytes, method_path, *, phases=None, model=None, out=None, det
 
 
 def columns_warnings(tables: dict[str, pd.DataFrame]) -> list[str]:
-    """Analytes left out of the comparison: without a predicted time on some phase (the
-    first phase's status names why, e.g. an unparseable SMILES or not eluted)."""
+    """Analytes left out of the comparison: without a predicted time on some phase or
+    method (the first one's status names why, e.g. an unparseable SMILES or not eluted)."""
     missing: dict[str, str] = {}
     for t in tables.values():
         for name, rt, status in zip(t["name"], t["rt_min"].astype(float), t["status"],
@@ -301,7 +343,7 @@ def columns_warnings(tables: dict[str, pd.DataFrame]) -> list[str]:
                 missing.setdefault(str(name), str(status))
     if not missing:
         return []
-    return [f"{len(missing)} analyte(s) without a predicted time on at least one phase, "
+    return [f"{len(missing)} analyte(s) without a predicted time on at least one column, "
             "left out of its order and pairs: "
             + name_list(f"{n} ({s})" for n, s in missing.items())]
 

@@ -119,6 +119,46 @@ def test_columns_detail_matches_predict_on_that_phase(shipped_model, analytes, d
         assert s.loc[phase, "order"] == " > ".join(ok["name"])
 
 
+def test_columns_compares_method_files_with_their_own_hsm(shipped_model, analytes, demo_dir,
+                                                         tmp_path):
+    # A file that gives the C8 class medians as its own [column.hsm] must predict what the
+    # class comparison predicts for C8 (one path for "own column" and "class median"); the
+    # files are ranked by the same rule, labelled by file name.
+    from dataclasses import asdict
+
+    from retpred.column import class_hsm
+
+    text = (demo_dir / "method.toml").read_text(encoding="utf-8")
+    hsm = "\n".join(f"{k} = {v!r}" for k, v in asdict(class_hsm("C8")).items())
+    own = tmp_path / "own-c8.toml"
+    own.write_text(text.replace('phase = "C18"', 'phase = "C8"').replace(
+        "[mobile_phase]", f"[column.hsm]\n{hsm}\n\n[mobile_phase]"), encoding="utf-8")
+    summary, detail = tmp_path / "s.csv", tmp_path / "d.csv"
+    res = run("columns", analytes, "-m", demo_dir / "method.toml", "-m", own,
+              "--out", summary, "--detail-out", detail)
+    assert res.exit_code == 0, res.output
+    assert "own-c8.toml" in res.output and "verdict" in res.output
+    d = pd.read_csv(detail)
+    assert sorted(d["method"].unique()) == ["method.toml", "own-c8.toml"]
+    classes = tmp_path / "classes.csv"
+    res = run("columns", analytes, "-m", demo_dir / "method.toml", "--phases", "C8",
+              "--detail-out", classes, "-q")
+    assert res.exit_code == 0, res.output
+    by_class = pd.read_csv(classes)
+    mine = d[d["method"] == "own-c8.toml"].reset_index(drop=True)
+    np.testing.assert_allclose(mine["rt_min"], by_class["rt_min"], rtol=1e-9, equal_nan=True)
+    s = pd.read_csv(summary)
+    assert s["rank"].tolist() == [1, 2] and set(s["phase"]) == {"C18", "C8"}
+    # fewest unresolved pairs first, then the larger smallest resolution
+    key = list(zip(s["n_unresolved"], -s["min_resolution"], strict=True))
+    assert key == sorted(key)
+    # --phases with several files, or one file twice: one line, exit 2
+    res = run("columns", analytes, "-m", demo_dir / "method.toml", "-m", own, "--phases", "C8")
+    assert res.exit_code == 2 and "--phases" in res.output
+    res = run("columns", analytes, "-m", own, "-m", own)
+    assert res.exit_code == 2 and "twice" in res.output
+
+
 def test_output_is_deterministic(shipped_model, analytes, demo_dir, tmp_path):
     a, b = tmp_path / "a.csv", tmp_path / "b.csv"
     for p in (a, b):
