@@ -149,6 +149,9 @@ def columns(
     out: Annotated[Path | None, typer.Option(help="Write the comparison as CSV.")] = None,
     detail_out: Annotated[Path | None, typer.Option(
         help="CSV: every analyte on every phase (times, widths, resolution, risk).")] = None,
+    plot: Annotated[Path | None, typer.Option(
+        help="PNG: simulated chromatograms, one panel per phase or method, best first.")
+    ] = None,
     force: ForceOpt = False,
     quiet: QuietOpt = False,
 ) -> None:
@@ -159,7 +162,7 @@ def columns(
         from retpred import workflow
 
         workflow.run_columns(analytes, method, phases=phases, model=model, out=out,
-                             detail_out=detail_out, force=force, quiet=quiet)
+                             detail_out=detail_out, plot=plot, force=force, quiet=quiet)
 
     _run(body)
 

@@ -103,46 +103,93 @@ def write_csv(table: pd.DataFrame, path: Path, *, force: bool, inputs=()) -> Non
         write_csv_rows(table, fh)
 
 
-def plot_chromatogram(
-    table: pd.DataFrame, path: Path, title: str, subtitle: str, *, force: bool, inputs=()
-) -> None:
-    """Simulated chromatogram: unit-area Gaussian peaks scaled to equal height, labelled,
-    critical pairs in red."""
+def _pyplot():
     import matplotlib
 
     matplotlib.use("Agg")
     import matplotlib.pyplot as plt
 
+    return plt
+
+
+def _peaks(table: pd.DataFrame):
+    """Eluted rows, their sigma (width / 4) and whether each is critical: at risk (>= 0.5)
+    or below Rs 1.5 with its next peak (then both peaks are marked)."""
     ok = table[np.isfinite(table["rt_min"].astype(float))]
     rt = ok["rt_min"].to_numpy(float)
     sigma = ok["peak_width_min"].to_numpy(float) / 4.0
     risk = ok["coelution_risk"].astype(float).to_numpy()
-    # critical: at risk, or below Rs 1.5 with the next peak (then both peaks are marked)
     rs_next = ok["resolution_next"].astype(float).to_numpy()
     order = np.argsort(rt)
-    low = np.zeros(rt.size, bool)
+    crit = np.isfinite(risk) & (risk >= 0.5)
     for a, b in zip(order[:-1], order[1:], strict=True):
         if np.isfinite(rs_next[a]) and rs_next[a] < 1.5:
-            low[a] = low[b] = True
-    end = float(np.nanmax(rt + 6 * sigma)) if rt.size else 1.0
-    grid = np.linspace(0.0, end * 1.05, 4000)
-    fig, ax = plt.subplots(figsize=(11, 4.8), dpi=110)
+            crit[a] = crit[b] = True
+    return ok["name"].astype(str).tolist(), rt, sigma, crit
+
+
+def _draw_chromatogram(ax, table: pd.DataFrame, end_min: float) -> None:
+    """One simulated trace: unit-area Gaussian peaks scaled to equal height, labelled,
+    critical peaks in red."""
+    names, rt, sigma, crit = _peaks(table)
+    grid = np.linspace(0.0, end_min, 4000)
     ax.plot(grid, simulate_chromatogram(rt, sigma, 1.0, grid), color="#1f4e79", lw=1.0)
-    for name, t, s, r, lo in zip(ok["name"].astype(str), rt, sigma, risk, low, strict=True):
-        crit = lo or (np.isfinite(r) and r >= 0.5)
-        color = "#c00000" if crit else "#333333"
-        if crit:
+    for name, t, s, c in zip(names, rt, sigma, crit, strict=True):
+        if c:
             ax.axvspan(t - 2 * s, t + 2 * s, color="#ffcccc", alpha=0.6, lw=0)
-        ax.annotate(name[:18], (t, 1.02), rotation=90, fontsize=7, color=color,
-                    ha="center", va="bottom", annotation_clip=False)
-    ax.set_xlim(0, grid[-1])
+        ax.annotate(name[:18], (t, 1.02), rotation=90, fontsize=7,
+                    color="#c00000" if c else "#333333", ha="center", va="bottom",
+                    annotation_clip=False)
+    ax.set_xlim(0, end_min)
     ax.set_ylim(0, 1.45)
+
+
+def _plot_end_min(tables) -> float:
+    ends = [float(np.nanmax(rt + 6 * sigma)) for _, rt, sigma, _ in map(_peaks, tables)
+            if rt.size]
+    return 1.05 * max(ends) if ends else 1.05
+
+
+def plot_chromatogram(
+    table: pd.DataFrame, path: Path, title: str, subtitle: str, *, force: bool, inputs=()
+) -> None:
+    """Simulated chromatogram: unit-area Gaussian peaks scaled to equal height, labelled,
+    critical pairs in red."""
+    plt = _pyplot()
+    fig, ax = plt.subplots(figsize=(11, 4.8), dpi=110)
+    _draw_chromatogram(ax, table, _plot_end_min([table]))
     ax.set_xlabel("time (min)")
     ax.set_ylabel("relative response (equal heights)")
     ax.set_title(title, fontsize=10, loc="left")
     ax.text(0.0, -0.2, subtitle + "\nSimulated from predicted times and widths; "
             "confirm by injection.", transform=ax.transAxes, fontsize=7, va="top")
     fig.tight_layout()
+    save_figure(fig, path, force=force, inputs=inputs)
+
+
+def comparison_figure(tables: dict[str, pd.DataFrame], labels: list[str], title: str):
+    """Simulated chromatograms of the same list, one panel per label (top to bottom in the
+    order of ``labels``), on one time axis; returns the matplotlib figure."""
+    plt = _pyplot()
+    n = len(labels)
+    fig, axes = plt.subplots(n, 1, figsize=(11, 1.2 + 2.3 * n), dpi=110, sharex=True,
+                             squeeze=False)
+    end = _plot_end_min([tables[k] for k in labels])
+    for ax, label in zip(axes[:, 0], labels, strict=True):
+        _draw_chromatogram(ax, tables[label], end)
+        ax.set_yticks([])
+        ax.set_ylabel(label, rotation=0, ha="right", va="center", fontsize=8)
+    axes[-1, 0].set_xlabel("time (min)")
+    axes[0, 0].set_title(title, fontsize=10, loc="left", pad=48)
+    axes[-1, 0].text(0.0, -0.45, "Simulated from predicted times and widths (zero-shot); "
+                     "confirm by injection.", transform=axes[-1, 0].transAxes, fontsize=7,
+                     va="top")
+    fig.tight_layout()
+    return fig
+
+
+def save_figure(fig, path: Path, *, force: bool, inputs=()) -> None:
+    plt = _pyplot()
     with atomic_output_path(path, force=force, inputs=inputs) as tmp:
         fig.savefig(tmp, format="png")
     plt.close(fig)

@@ -35,10 +35,12 @@ from retpred.predict import (
 )
 from retpred.report import (
     CAUTION,
+    comparison_figure,
     make_console,
     name_list,
     plot_chromatogram,
     print_report,
+    save_figure,
     write_csv,
 )
 
@@ -262,7 +264,7 @@ def method_labels(paths: Sequence[Path]) -> list[str]:
 
 
 def run_columns(analytes, method_path, *, phases=None, model=None, out=None, detail_out=None,
-                force=False, quiet=False, caution=True):
+                plot=None, force=False, quiet=False, caution=True):
     """The ``columns`` command; ``caution=False`` when the caller has shown it already.
 
     ``method_path``: one method file (its column replaced by each phase class of
@@ -277,7 +279,7 @@ def run_columns(analytes, method_path, *, phases=None, model=None, out=None, det
         raise InputError("--phases compares phase classes on one method; with several "
                          "--method files the files are compared as written", field="--phases")
     inputs = [analytes, *paths, model]
-    check_outputs([out, detail_out], inputs, force)
+    check_outputs([out, detail_out, plot], inputs, force)
     methods = [load_method(p) for p in paths]
     method = methods[0]
     mdl = load_model(model)
@@ -295,6 +297,12 @@ def run_columns(analytes, method_path, *, phases=None, model=None, out=None, det
         write_csv(flat, out, force=force, inputs=inputs)
     if detail_out is not None:
         write_csv(columns_detail(tables, key), detail_out, force=force, inputs=inputs)
+    if plot is not None:
+        labels = summary[key].tolist()  # best first
+        title = (f"retpred: {Path(analytes).name}, "
+                 + ("methods" if several else f"phases on {method_summary(method)}")
+                 + " (best first)")
+        save_figure(comparison_figure(tables, labels, title), plot, force=force, inputs=inputs)
     if not quiet:
         console = make_console()
         title = ("Methods compared on the same list (each file's own column and conditions)"
@@ -326,7 +334,7 @@ def run_columns(analytes, method_path, *, phases=None, model=None, out=None, det
                       + ", it does not replace a run on each column")
         if caution:
             console.print(f"[dim]{CAUTION}[/]")
-        for p in (out, detail_out):
+        for p in (out, detail_out, plot):
             if p is not None:
                 console.print(f"wrote {p}")
     return summary

@@ -133,11 +133,12 @@ def test_columns_compares_method_files_with_their_own_hsm(shipped_model, analyte
     own = tmp_path / "own-c8.toml"
     own.write_text(text.replace('phase = "C18"', 'phase = "C8"').replace(
         "[mobile_phase]", f"[column.hsm]\n{hsm}\n\n[mobile_phase]"), encoding="utf-8")
-    summary, detail = tmp_path / "s.csv", tmp_path / "d.csv"
+    summary, detail, png = tmp_path / "s.csv", tmp_path / "d.csv", tmp_path / "c.png"
     res = run("columns", analytes, "-m", demo_dir / "method.toml", "-m", own,
-              "--out", summary, "--detail-out", detail)
+              "--out", summary, "--detail-out", detail, "--plot", png)
     assert res.exit_code == 0, res.output
     assert "own-c8.toml" in res.output and "verdict" in res.output
+    assert png.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"  # PNG signature (ISO/IEC 15948)
     d = pd.read_csv(detail)
     assert sorted(d["method"].unique()) == ["method.toml", "own-c8.toml"]
     classes = tmp_path / "classes.csv"

@@ -4,10 +4,11 @@ Synthetic table; the risk values are arbitrary test numbers."""
 
 from __future__ import annotations
 
+import numpy as np
 import pandas as pd
 from rich.console import Console
 
-from retpred.report import name_list, print_report
+from retpred.report import comparison_figure, name_list, print_report
 
 
 def _table():
@@ -35,3 +36,21 @@ def test_name_list_shows_eight_names_then_marks_the_rest():
     nine = [f"x{i}" for i in range(9)]
     assert name_list(nine) == ", ".join(nine[:8]) + " ..."
     assert name_list(iter(nine), limit=9) == ", ".join(nine)
+
+
+def test_comparison_figure_one_panel_per_label_on_one_time_axis():
+    early = _table()
+    late = _table().assign(rt_min=[2.0, 4.0, 8.0, 12.0], coelution_risk=[0.1] * 4,
+                           resolution_next=[9.0, 9.0, 9.0, float("nan")])
+    fig = comparison_figure({"early": early, "late": late}, ["late", "early"], "t")
+    axes = fig.axes
+    assert [ax.get_ylabel() for ax in axes] == ["late", "early"]  # in the order given
+    # one time axis, ending 5 % after the last peak's +6 sigma (12 + 6 x 0.05 / 4)
+    for ax in axes:
+        assert np.isclose(ax.get_xlim()[1], 1.05 * (12.0 + 6 * 0.0125))
+    # each trace peaks at the predicted times (equal heights, peaks far apart)
+    x, y = axes[0].lines[0].get_data()
+    tops = x[1:-1][(y[1:-1] > y[:-2]) & (y[1:-1] >= y[2:]) & (y[1:-1] > 0.5)]
+    np.testing.assert_allclose(tops, [2.0, 4.0, 8.0, 12.0], atol=x[1] - x[0])
+    # critical peaks shaded: none on "late"; a and b (Rs 0.25, risk 0.8) and c (risk 0.6)
+    assert len(axes[0].patches) == 0 and len(axes[1].patches) == 3
