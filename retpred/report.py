@@ -26,7 +26,7 @@ def name_list(names, limit: int = 8) -> str:
     return ", ".join(names[:limit]) + (" ..." if len(names) > limit else "")
 
 
-def _fmt(x, digits=2) -> str:
+def fmt_value(x, digits=2) -> str:
     if x is None or (isinstance(x, float) and not math.isfinite(x)) or x is pd.NA:
         return "-"
     try:
@@ -60,12 +60,12 @@ def elution_table(table: pd.DataFrame, title: str, max_rows: int = 60) -> Table:
         t.add_row(
             "-" if eo is pd.NA else str(int(eo)),
             str(r["name"]),
-            _fmt(r["rt_min"]),
-            f"{_fmt(r['rt_low_min'])}-{_fmt(r['rt_high_min'])}",
-            _fmt(r["peak_width_min"], 3),
-            _fmt(r["resolution_next"], 1),
-            f"{flag}{_fmt(risk)}",
-            _fmt(r["logd"], 1),
+            fmt_value(r["rt_min"]),
+            f"{fmt_value(r['rt_low_min'])}-{fmt_value(r['rt_high_min'])}",
+            fmt_value(r["peak_width_min"], 3),
+            fmt_value(r["resolution_next"], 1),
+            f"{flag}{fmt_value(risk)}",
+            fmt_value(r["logd"], 1),
             str(r["species"]),
             str(r["status"])[:60],
         )

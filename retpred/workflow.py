@@ -36,6 +36,7 @@ from retpred.predict import (
 from retpred.report import (
     CAUTION,
     comparison_figure,
+    fmt_value,
     make_console,
     name_list,
     plot_chromatogram,
@@ -315,14 +316,18 @@ def run_columns(analytes, method_path, *, phases=None, model=None, out=None, det
             t.add_column(c)
         for r in summary.to_dict("records"):
             t.add_row(str(r["rank"]), *([r["method"]] if several else []), r["phase"],
-                      f"{r['min_resolution']:.2f}", r["worst_pair"], str(r["n_unresolved"]),
-                      f"{r['last_rt_min']:.2f}")
+                      fmt_value(r["min_resolution"]), r["worst_pair"], str(r["n_unresolved"]),
+                      fmt_value(r["last_rt_min"]))
         console.print(t)
         best = summary.iloc[0]
-        verdict = (f"{best[key]} separates this list best"
-                   + (" and resolves all pairs" if best.n_unresolved == 0 else
-                      f" but leaves {best.n_unresolved} pair(s) below Rs 1.5"))
-        console.print(f"[bold]verdict:[/] {verdict} (smallest Rs {best.min_resolution:.2f}).")
+        if np.isfinite(best.min_resolution):
+            verdict = (f"{best[key]} separates this list best"
+                       + (" and resolves all pairs" if best.n_unresolved == 0 else
+                          f" but leaves {best.n_unresolved} pair(s) below Rs 1.5")
+                       + f" (smallest Rs {best.min_resolution:.2f}).")
+        else:
+            verdict = "fewer than two analytes have a predicted time: no pair to separate."
+        console.print(f"[bold]verdict:[/] {verdict}")
         method_warnings = ([f"{label}: {w}" for label, m in zip(tables, methods, strict=True)
                             for w in m.warnings] if several else list(method.warnings))
         for w in [*method_warnings, *columns_warnings(tables)]:

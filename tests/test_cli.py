@@ -160,6 +160,16 @@ def test_columns_compares_method_files_with_their_own_hsm(shipped_model, analyte
     assert res.exit_code == 2 and "twice" in res.output
 
 
+def test_columns_with_one_analyte_gives_no_verdict(shipped_model, demo_dir, tmp_path):
+    # one structure and one broken one: no pair on any phase, so no "best" phase is named
+    one = tmp_path / "one.csv"
+    one.write_text("name,smiles\ntoluene,Cc1ccccc1\nbroken,C1CC(\n", encoding="utf-8")
+    res = run("columns", one, "--method", demo_dir / "method.toml")
+    assert res.exit_code == 0, res.output
+    flat = " ".join(res.output.split())
+    assert "no pair to separate" in flat and "separates this list best" not in flat
+
+
 def test_output_is_deterministic(shipped_model, analytes, demo_dir, tmp_path):
     a, b = tmp_path / "a.csv", tmp_path / "b.csv"
     for p in (a, b):
