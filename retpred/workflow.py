@@ -191,6 +191,7 @@ def phase_summary(table: pd.DataFrame, rs_target: float = 1.5) -> dict:
             if finite[i] and rs[i] < rs_target]
     min_rs = float(np.nanmin(rs)) if finite.any() else float("nan")
     imin = int(np.nanargmin(np.where(finite, rs, np.inf))) if finite.any() else -1
+    risk = ok["coelution_risk"].astype(float).to_numpy()
     return {
         "order": names,
         "critical_pairs": crit,
@@ -198,8 +199,7 @@ def phase_summary(table: pd.DataFrame, rs_target: float = 1.5) -> dict:
         "worst_pair": f"{names[imin]} / {names[imin + 1]}" if imin >= 0 else "",
         "n_unresolved": len(crit),
         "last_rt_min": float(ok["rt_min"].max()) if len(ok) else float("nan"),
-        "max_risk": float(np.nanmax(ok["coelution_risk"].astype(float)))
-        if len(ok) else float("nan"),
+        "max_risk": float(np.nanmax(risk)) if np.isfinite(risk).any() else float("nan"),
     }
 
 
