@@ -830,6 +830,8 @@ def describe_scan(result: ScanResult) -> list[str]:
     if result.robust_windows:
         lines.append(f"Rs >= {result.rs_target:g} over {unit} "
                      f"{_windows_text(result.robust_windows)}")
+    elif not np.isfinite(result.min_resolution).any():
+        lines.append("no pair to separate at any setting (fewer than two analytes elute)")
     else:
         lines.append(f"no setting keeps every pair at Rs >= {result.rs_target:g}")
     p = result.pressure

@@ -32,6 +32,7 @@ from retpred.model import COLUMN_TERM_NAMES, SystemContext, featurise
 from retpred.predict import add_pairs, predict_solutes, prepare, system_context
 from retpred.scan import (
     buffers_for_ph,
+    describe_scan,
     gradient_time_scan,
     parse_range,
     ph_scan,
@@ -190,6 +191,16 @@ def test_unparseable_analyte_is_named_once_and_others_still_scan(small_model):
     assert np.isfinite(res.rt_min[:, [0, 2]]).all() and np.isnan(res.rt_min[:, 1]).all()
     named = [w for w in res.warnings if "broken" in w]
     assert len(named) == 1 and "could not be used" in named[0]
+
+
+def test_one_analyte_scan_says_there_is_no_pair(small_model):
+    # one analyte: no resolution at any point, so no claim that pairs stay unresolved
+    res = ph_scan(_method(), small_model, featurise([BENZOIC_ACID]), ["benzoic acid"],
+                  parse_range("3:5:1", "x"))
+    assert np.isfinite(res.rt_min).all() and not np.isfinite(res.min_resolution).any()
+    lines = describe_scan(res)
+    assert any("no pair to separate" in x for x in lines)
+    assert not any("keeps every pair" in x for x in lines)
 
 
 def test_fast_path_equals_model_and_prediction_path(small_model, demo_dir):
