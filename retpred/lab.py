@@ -28,7 +28,7 @@ from retpred.calibration import neighbour_correction
 from retpred.errors import InputError
 from retpred.gradient import elute, log_kw_from_rt
 from retpred.io import atomic_output_path, read_training_data
-from retpred.method import load_method
+from retpred.method import load_method, method_summary
 from retpred.model import (
     FINGERPRINT_COLUMNS,
     data_fingerprint,
@@ -41,6 +41,56 @@ from retpred.predict import prepare
 from retpred.training import void_bound_log_kw
 
 MIN_COMPOUNDS = 20
+
+#: A prediction system counts as one the lab model was trained on when its eluent and
+#: column parameters are the same and its pH and temperature are within these (our choice:
+#: an ionisable analyte's retention can move visibly over a few tenths of a pH unit near
+#: its pKa, and retention factors change by roughly 1-2 % per degree, common practice).
+LAB_PH_TOLERANCE = 0.3
+LAB_TEMPERATURE_TOLERANCE_C = 5.0
+
+
+def system_record(context, summary: str) -> dict:
+    """What a lab model keeps of a training method's system (for :func:`lab_domain_note`)."""
+    h = context.hsm
+    return {"organic": context.organic, "ph": float(context.ph),
+            "temperature_c": float(context.temperature_c),
+            "hsm": [float(v) for v in (h.H, h.S, h.A, h.B, h.C28, h.C70, h.kEB)],
+            "summary": summary}
+
+
+def _differences(rec: dict, context) -> list[str]:
+    out = []
+    if rec["organic"] != context.organic:
+        out.append(f"organic modifier ({context.organic}, trained with {rec['organic']})")
+    h = context.hsm
+    if not np.allclose(rec["hsm"], [h.H, h.S, h.A, h.B, h.C28, h.C70, h.kEB], rtol=1e-6,
+                       atol=1e-9):
+        out.append("column (other HSM parameters or phase class)")
+    if abs(rec["ph"] - context.ph) > LAB_PH_TOLERANCE:
+        out.append(f"pH ({context.ph:g}, trained at {rec['ph']:g})")
+    if abs(rec["temperature_c"] - context.temperature_c) > LAB_TEMPERATURE_TOLERANCE_C:
+        out.append(f"temperature ({context.temperature_c:g} C, trained at "
+                   f"{rec['temperature_c']:g} C)")
+    return out
+
+
+def lab_domain_note(model, context) -> str | None:
+    """A note when ``model`` is a lab model and ``context`` (the prediction's system) is not
+    one of the systems it was trained on: its correction is then carried to a system it
+    never saw. Gradient, flow, dwell volume and column size do not count: the gradient
+    engine takes them, the correction acts on ``log kw``. None for the shipped model and
+    for lab models written before the systems were recorded."""
+    records = (getattr(model, "meta_", None) or {}).get("lab_systems")
+    if not records:
+        return None
+    diffs = [_differences(r, context) for r in records]
+    if any(not d for d in diffs):
+        return None
+    nearest = min(diffs, key=len)
+    return ("the lab model was trained on other conditions: this method differs in "
+            + "; ".join(nearest) + ". Its correction is carried over untested; check it "
+            "with a few standards (--calibrants)")
 
 
 #: The shipped model unchanged or shifted are candidates too (when the lab's data show that
@@ -210,6 +260,7 @@ def train_lab_model(
         "lab_trained": now_utc(),
         "lab_training_files": [str(p) for p in data],
         "lab_training_sha256": data_fingerprint(*(Path(p).read_bytes() for p in data)),
+        "lab_systems": [system_record(p.context, method_summary(p.method)) for p in preps],
         "lab_n_compounds": n_ok,
         "lab_n_unretained": int(np.isnan(o).sum()),
         "lab_n_near_t0": int(np.isfinite(upper_lk[idx]).sum()),

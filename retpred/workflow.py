@@ -90,7 +90,13 @@ def prepared_run(
     model = load_model(model_path)
     if calibrants is not None and calibration is not None:
         raise InputError("give --calibrants or --calibration, not both")
+    from retpred.lab import lab_domain_note
+
     prep = prepare(method, model)
+    note = lab_domain_note(model, prep.context)
+    if note:
+        method = dataclasses.replace(method, warnings=(*method.warnings, note))
+        prep = dataclasses.replace(prep, method=method)
     if calibrants is not None:
         cal_df = read_calibrants(calibrants)
         cal = calibrate(prep, cal_df["smiles"], cal_df["rt_min"].to_numpy(float),

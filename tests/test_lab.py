@@ -6,6 +6,8 @@ was not trained on: half its compounds train the lab model, the other half score
 
 from __future__ import annotations
 
+import re
+
 import numpy as np
 import pandas as pd
 import pytest
@@ -115,3 +117,37 @@ def test_never_overwrites_without_force_nor_the_default(lab_case):
                         out=default_model_path(), base_model=lab_case["base"], quiet=True,
                         force=True)
     assert isinstance(pd.read_csv(lab_case["dir"] / "inhouse.csv"), pd.DataFrame)
+
+
+def test_predicting_off_the_lab_conditions_is_noted(lab_case, tmp_path):
+    # A lab correction is learned on one system; a method whose pH (beyond the 0.3-unit
+    # tolerance, our choice), modifier or column differs gets a note, the same system none.
+    # Gradient and flow do not count: the engine takes them.
+    out = tmp_path / "lab.skops"
+    train_lab_model([lab_case["dir"] / "inhouse.csv"], [lab_case["method"]], out=out,
+                    base_model=lab_case["base"], quiet=True)
+    text = lab_case["method"].read_text(encoding="utf-8")
+    ph = load_method(lab_case["method"]).ph
+    analytes = tmp_path / "a.csv"
+    lab_case["test"].iloc[:5][["name", "smiles"]].to_csv(analytes, index=False)
+
+    def notes_for(method_text):
+        m = tmp_path / "m.toml"
+        m.write_text(method_text, encoding="utf-8")
+        res = CliRunner().invoke(app, ["predict", str(analytes), "-m", str(m), "--model",
+                                       str(out)])
+        assert res.exit_code == 0, res.output
+        return " ".join(res.output.split())
+
+    assert "trained on other conditions" not in notes_for(text)
+
+    def with_ph(value):
+        if re.search(r"(?m)^ph\s*=", text):
+            return re.sub(r"(?m)^ph\s*=.*$", f"ph = {value}", text)
+        return text.replace("[mobile_phase]", f"[mobile_phase]\nph = {value}")
+
+    assert "trained on other conditions" not in notes_for(with_ph(ph + 0.2))
+    far = notes_for(with_ph(ph + 1.5))
+    assert "trained on other conditions" in far and "pH" in far
+    meoh = notes_for(text.replace('"acetonitrile"', '"methanol"'))
+    assert "organic modifier (methanol" in meoh
