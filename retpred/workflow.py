@@ -22,6 +22,7 @@ from retpred.io import (
     read_calibrants,
     read_smiles_list,
 )
+from retpred.lab import lab_domain_note
 from retpred.method import PHASE_CLASSES, Method, load_method, method_summary
 from retpred.model import RetentionModel, featurise
 from retpred.modelfile import load_model
@@ -32,6 +33,7 @@ from retpred.predict import (
     calibrate,
     predict_solutes,
     prepare,
+    system_context,
 )
 from retpred.report import (
     CAUTION,
@@ -90,8 +92,6 @@ def prepared_run(
     model = load_model(model_path)
     if calibrants is not None and calibration is not None:
         raise InputError("give --calibrants or --calibration, not both")
-    from retpred.lab import lab_domain_note
-
     prep = prepare(method, model)
     note = lab_domain_note(model, prep.context)
     if note:
@@ -223,13 +223,11 @@ def parse_phases(phases: str | None) -> list[str]:
     return out
 
 
-def compare_columns(method: Method, model: RetentionModel, smiles: list[str], names: list[str],
-                    phases: list[str]) -> tuple[pd.DataFrame, dict[str, pd.DataFrame]]:
-    """Predict the same list on each phase class (class-median HSM parameters)."""
-    entries = [(phase, dataclasses.replace(
+def phase_entries(method: Method, phases: list[str]) -> list[tuple[str, Method]]:
+    """``method`` with its column set to each phase class (class-median HSM parameters)."""
+    return [(phase, dataclasses.replace(
         method, column=dataclasses.replace(method.column, phase=phase, hsm=None)))
         for phase in phases]
-    return compare_methods(entries, model, smiles, names, key="phase")
 
 
 def compare_methods(entries: Sequence[tuple[str, Method]], model: RetentionModel,
@@ -292,11 +290,9 @@ def run_columns(analytes, method_path, *, phases=None, model=None, out=None, det
     mdl = load_model(model)
     smiles, names = read_smiles_list(analytes)
     key = "method" if several else "phase"
-    if several:
-        summary, tables = compare_methods(list(zip(method_labels(paths), methods, strict=True)),
-                                          mdl, smiles, names)
-    else:
-        summary, tables = compare_columns(method, mdl, smiles, names, parse_phases(phases))
+    entries = (list(zip(method_labels(paths), methods, strict=True)) if several
+               else phase_entries(method, parse_phases(phases)))
+    summary, tables = compare_methods(entries, mdl, smiles, names, key=key)
     if out is not None:
         flat = summary.copy()
         flat["order"] = flat["order"].map(lambda x: " > ".join(x))
@@ -336,6 +332,12 @@ def run_columns(analytes, method_path, *, phases=None, model=None, out=None, det
         console.print(f"[bold]verdict:[/] {verdict}")
         method_warnings = ([f"{label}: {w}" for label, m in zip(tables, methods, strict=True)
                             for w in m.warnings] if several else list(method.warnings))
+        off_lab = [label for label, m in entries
+                   if lab_domain_note(mdl, system_context(m)) is not None]
+        if off_lab:
+            method_warnings.append(
+                "the lab model was trained on other conditions than those of "
+                + name_list(off_lab) + ": its correction is carried over untested there")
         for w in [*method_warnings, *columns_warnings(tables)]:
             console.print(f"[yellow]warning:[/] {w}")
         console.print("[yellow]note:[/] zero-shot estimates"

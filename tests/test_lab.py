@@ -151,3 +151,11 @@ def test_predicting_off_the_lab_conditions_is_noted(lab_case, tmp_path):
     assert "trained on other conditions" in far and "pH" in far
     meoh = notes_for(text.replace('"acetonitrile"', '"methanol"'))
     assert "organic modifier (methanol" in meoh
+    # columns: the lab's own method file is not named, a methanol variant of it is
+    other = tmp_path / "meoh.toml"
+    other.write_text(text.replace('"acetonitrile"', '"methanol"'), encoding="utf-8")
+    res = CliRunner().invoke(app, ["columns", str(analytes), "-m", str(lab_case["method"]),
+                                   "-m", str(other), "--model", str(out)])
+    assert res.exit_code == 0, res.output
+    line = " ".join(res.output.split()).split("trained on other conditions than those of ")[1]
+    assert line.startswith("meoh.toml:")
