@@ -16,6 +16,7 @@ over compounds is used, and the figures are reported side by side with the shipp
 from __future__ import annotations
 
 import copy
+import dataclasses
 from collections.abc import Sequence
 from pathlib import Path
 
@@ -52,20 +53,16 @@ LAB_TEMPERATURE_TOLERANCE_C = 5.0
 
 def system_record(context, summary: str) -> dict:
     """What a lab model keeps of a training method's system (for :func:`lab_domain_note`)."""
-    h = context.hsm
     return {"organic": context.organic, "ph": float(context.ph),
             "temperature_c": float(context.temperature_c),
-            "hsm": [float(v) for v in (h.H, h.S, h.A, h.B, h.C28, h.C70, h.kEB)],
-            "summary": summary}
+            "hsm": [float(v) for v in dataclasses.astuple(context.hsm)], "summary": summary}
 
 
 def _differences(rec: dict, context) -> list[str]:
     out = []
     if rec["organic"] != context.organic:
         out.append(f"organic modifier ({context.organic}, trained with {rec['organic']})")
-    h = context.hsm
-    if not np.allclose(rec["hsm"], [h.H, h.S, h.A, h.B, h.C28, h.C70, h.kEB], rtol=1e-6,
-                       atol=1e-9):
+    if not np.allclose(rec["hsm"], dataclasses.astuple(context.hsm), rtol=1e-6, atol=1e-9):
         out.append("column (other HSM parameters or phase class)")
     if abs(rec["ph"] - context.ph) > LAB_PH_TOLERANCE:
         out.append(f"pH ({context.ph:g}, trained at {rec['ph']:g})")
