@@ -103,7 +103,8 @@ def write_csv(table: pd.DataFrame, path: Path, *, force: bool, inputs=()) -> Non
         write_csv_rows(table, fh)
 
 
-def _pyplot():
+def pyplot():
+    """matplotlib's pyplot on the non-interactive Agg backend (imported on first use)."""
     import matplotlib
 
     matplotlib.use("Agg")
@@ -155,7 +156,7 @@ def plot_chromatogram(
 ) -> None:
     """Simulated chromatogram: unit-area Gaussian peaks scaled to equal height, labelled,
     critical pairs in red."""
-    plt = _pyplot()
+    plt = pyplot()
     fig, ax = plt.subplots(figsize=(11, 4.8), dpi=110)
     _draw_chromatogram(ax, table, _plot_end_min([table]))
     ax.set_xlabel("time (min)")
@@ -170,7 +171,7 @@ def plot_chromatogram(
 def comparison_figure(tables: dict[str, pd.DataFrame], labels: list[str], title: str):
     """Simulated chromatograms of the same list, one panel per label (top to bottom in the
     order of ``labels``), on one time axis; returns the matplotlib figure."""
-    plt = _pyplot()
+    plt = pyplot()
     n = len(labels)
     fig, axes = plt.subplots(n, 1, figsize=(11, 1.2 + 2.3 * n), dpi=110, sharex=True,
                              squeeze=False)
@@ -189,7 +190,9 @@ def comparison_figure(tables: dict[str, pd.DataFrame], labels: list[str], title:
 
 
 def save_figure(fig, path: Path, *, force: bool, inputs=()) -> None:
-    plt = _pyplot()
+    """Write ``fig`` as PNG atomically (never over an input; an existing file only with
+    ``force``) and close it."""
+    plt = pyplot()
     with atomic_output_path(path, force=force, inputs=inputs) as tmp:
         fig.savefig(tmp, format="png")
     plt.close(fig)

@@ -54,7 +54,14 @@ from retpred.model import (
     solute_matrix,
 )
 from retpred.peaks import peak_sigma_min, resolution
-from retpred.report import name_list
+from retpred.report import (
+    CAUTION,
+    make_console,
+    name_list,
+    pyplot,
+    save_figure,
+    write_csv,
+)
 
 #: Baseline separation (common practice; retention-physics.md section 6).
 DEFAULT_RS_TARGET = 1.5
@@ -853,13 +860,7 @@ def describe_scan(result: ScanResult) -> list[str]:
 def plot_scan(result: ScanResult, path, *, force: bool = False, inputs=()) -> None:
     """Resolution map (smallest Rs vs setting, the target line, robust windows shaded,
     skipped pH points marked) above the predicted time of each analyte vs setting."""
-    import matplotlib
-
-    matplotlib.use("Agg")
-    import matplotlib.pyplot as plt
-
-    from retpred.io import atomic_output_path
-
+    plt = pyplot()
     x = result.values
     xlabel = "pH" if result.setting == SETTING_PH else "gradient ramp time (min)"
     fig, (ax1, ax2) = plt.subplots(2, 1, figsize=(10, 7.5), dpi=110, sharex=True,
@@ -893,9 +894,7 @@ def plot_scan(result: ScanResult, path, *, force: bool = False, inputs=()) -> No
     ax2.text(0.0, -0.16, result.method_text + "\nPredicted; confirm by injection.",
              transform=ax2.transAxes, fontsize=7, va="top")
     fig.tight_layout()
-    with atomic_output_path(path, force=force, inputs=inputs) as tmp:
-        fig.savefig(tmp, format="png")
-    plt.close(fig)
+    save_figure(fig, path, force=force, inputs=inputs)
 
 
 # =============================================================================================
@@ -948,7 +947,6 @@ def run_scan(analytes, method_path, *, ph: str | None = None, gradient_time: str
 
     from retpred.io import read_smiles_list
     from retpred.model import featurise
-    from retpred.report import write_csv
     from retpred.workflow import check_outputs, parse_phases, prepared_run
 
     inputs = [analytes, method_path, model, calibrants, calibration]
@@ -993,8 +991,6 @@ def run_scan(analytes, method_path, *, ph: str | None = None, gradient_time: str
             phase_result.scans[phase_result.summary.loc[0, "phase"]]
         plot_scan(best, Path(plot), force=force, inputs=inputs)
     if not quiet:
-        from retpred.report import CAUTION, make_console
-
         console = make_console()
         console.print(method_summary(method))
         if cal is not None:

@@ -330,8 +330,8 @@ def run_columns(analytes, method_path, *, phases=None, model=None, out=None, det
         else:
             verdict = "fewer than two analytes have a predicted time: no pair to separate."
         console.print(f"[bold]verdict:[/] {verdict}")
-        method_warnings = ([f"{label}: {w}" for label, m in zip(tables, methods, strict=True)
-                            for w in m.warnings] if several else list(method.warnings))
+        method_warnings = ([f"{label}: {w}" for label, m in entries for w in m.warnings]
+                           if several else list(method.warnings))
         off_lab = [label for label, m in entries
                    if lab_domain_note(mdl, system_context(m)) is not None]
         if off_lab:
