@@ -155,8 +155,7 @@ def columns(
     force: ForceOpt = False,
     quiet: QuietOpt = False,
 ) -> None:
-    """Compare column phase classes on one method, or several method files: order, critical
-    pairs, verdict."""
+    """Compare phase classes on one method, or method files: order, critical pairs, verdict."""
 
     def body():
         from retpred import workflow

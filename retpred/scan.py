@@ -374,7 +374,8 @@ class ScanResult:
     ``run_time_min`` is the time of the last eluting analyte (the shortest useful run);
     ``program_end_min`` the pump program's end. ``min_resolution`` is the smallest
     neighbour Rs = (t2 - t1) / (2 (sigma1 + sigma2)) among eluted analytes (NaN with fewer
-    than two). ``best_index`` maximises the smallest Rs (ties within 0.01: shorter run).
+    than two). ``best_index`` maximises the smallest Rs (ties within 0.01: shorter run); in
+    a pH scan it is the middle of the plateau within 5 % of the largest (:func:`_best`).
     ``robust_windows`` are (lo, hi) settings of contiguous evaluated points with smallest
     Rs >= ``rs_target`` (a skipped point ends a window).
     """
@@ -453,14 +454,39 @@ def robust_windows(values: np.ndarray, min_rs: np.ndarray, rs_target: float,
     return out
 
 
-def _best(min_rs: np.ndarray, run_min: np.ndarray) -> int:
+#: pH scans: points whose smallest Rs is within this share of the scan's largest count as
+#: equally good, and the most central of them is taken (our choice; a predicted Rs is far
+#: less certain than 5 %)
+PH_BEST_RS_SHARE = 0.05
+
+
+def _best(min_rs: np.ndarray, run_min: np.ndarray, values: np.ndarray | None = None,
+          gaps: np.ndarray | None = None) -> int:
+    """Index of the best point: the largest smallest Rs (ties within 0.01: shorter run).
+
+    With ``values`` (a pH scan), every point within :data:`PH_BEST_RS_SHARE` of the
+    largest smallest Rs is a candidate, and the one farthest from the ends of its run of
+    consecutive candidates (broken by ``gaps``, as :func:`robust_windows` is) is taken:
+    the middle of a plateau, where a buffer made up 0.2 units off or a pKa predicted a
+    little wrong costs least, rather than its edge. Ties: larger Rs, then shorter run.
+    """
     if min_rs.size == 0:
         return -1
+    run_key = np.where(np.isfinite(run_min), run_min, np.inf)
     if not np.isfinite(min_rs).any():
-        return int(np.nanargmin(np.where(np.isfinite(run_min), run_min, np.inf)))
+        return int(np.argmin(run_key))
     top = np.nanmax(min_rs)
-    cand = np.flatnonzero(np.isfinite(min_rs) & (min_rs >= top - 0.01))
-    return int(cand[np.argmin(np.where(np.isfinite(run_min[cand]), run_min[cand], np.inf))])
+    if values is None:
+        cand = np.flatnonzero(np.isfinite(min_rs) & (min_rs >= top - 0.01))
+        return int(cand[np.argmin(run_key[cand])])
+    good = np.isfinite(min_rs) & (min_rs >= top - max(0.01, PH_BEST_RS_SHARE * top))
+    margin = np.full(min_rs.size, -np.inf)
+    for lo, hi in robust_windows(values, np.where(good, 1.0, 0.0), 0.5, gaps):
+        inside = (values >= lo) & (values <= hi) & good
+        margin[inside] = np.minimum(values[inside] - lo, hi - values[inside])
+    rs_key = np.where(np.isfinite(min_rs), min_rs, -np.inf)
+    # lexsort: the last key is the primary one
+    return int(np.lexsort((run_key, -rs_key, -margin))[0])
 
 
 def _elute_points(method: Method, programs, t0_min: float, log_kw: np.ndarray, s: np.ndarray,
@@ -516,7 +542,8 @@ def _assemble(method: Method, setting: str, values, names, rt, sigma, plates, st
                         + name_list([names[j] for j in np.flatnonzero(late)]))
     if (n_eluted < 2).any():
         warnings.append("fewer than two analytes elute at some points: no resolution there")
-    best = _best(min_rs, run)
+    vals = np.asarray(values, dtype=float)
+    best = _best(min_rs, run, vals if setting == SETTING_PH else None, gaps)
     return ScanResult(
         setting=setting, values=np.asarray(values, dtype=float), names=list(names), rt_min=rt,
         peak_width_min=4.0 * sigma, charge=charge, status=status, min_resolution=min_rs,
@@ -740,7 +767,12 @@ def phase_ph_scan(
 
 
 def _windows_text(windows: list[tuple[float, float]]) -> str:
-    return "; ".join(f"{lo:g}-{hi:g}" if hi > lo else f"{lo:g}" for lo, hi in windows)
+    """``[(2, 4), (6, 6)]`` -> ``"2-4 and 6 (one point)"``: a window of a single scan
+    point is named as such, since a neighbour on either side already fails."""
+    parts = [f"{lo:g}-{hi:g}" if hi > lo else f"{lo:g} (one point)" for lo, hi in windows]
+    if len(parts) < 2:
+        return "".join(parts)
+    return ", ".join(parts[:-1]) + " and " + parts[-1]
 
 
 def _suggest(summary: pd.DataFrame, rs_target: float) -> str:

@@ -31,6 +31,8 @@ from retpred.method import Column, Gradient, Instrument, Method, MobilePhase
 from retpred.model import COLUMN_TERM_NAMES, SystemContext, featurise
 from retpred.predict import add_pairs, predict_solutes, prepare, system_context
 from retpred.scan import (
+    _best,
+    _windows_text,
     buffers_for_ph,
     describe_scan,
     gradient_time_scan,
@@ -359,6 +361,42 @@ def test_robust_windows_hand_example():
     rs = np.array([1.0, 2.0, 2.0, 1.0, 1.6, np.nan])
     assert robust_windows(x, rs, 1.5) == [(2.0, 3.0), (5.0, 5.0)]
     assert robust_windows(x, rs, 2.5) == []
+
+
+def test_best_ph_is_the_middle_of_the_plateau_not_its_edge():
+    # hand example: Rs 2.25 at pH 2 (the scan's and column's edge) and 2.24 over pH 2.5-4;
+    # all within 5 % of the top, so the middle of 2-4 is taken, not the edge (common
+    # practice: work where a small pH error costs nothing)
+    ph = np.arange(2.0, 6.01, 0.5)
+    rs = np.array([2.25, 2.24, 2.238, 2.24, 2.243, 1.2, 0.4, 1.7, 0.7])
+    run = np.full(ph.size, 10.0)
+    assert ph[_best(rs, run, ph)] == 3.0
+    assert _best(rs, run) == 0  # without values (gradient time): the largest Rs
+    # an isolated top point more than 5 % above the plateau wins
+    rs2 = rs.copy()
+    rs2[7] = 2.5
+    assert ph[_best(rs2, run, ph)] == 5.5
+    # a skipped point (gap before pH 3.5) breaks the plateau: 2-3 and 3.5-4 are two runs;
+    # their middles (2.5 and 3.5/4 at margin 0.5/0) -> pH 2.5, margin 0.5
+    gaps = np.zeros(ph.size, dtype=bool)
+    gaps[3] = True
+    assert ph[_best(rs, run, ph, gaps)] == 2.5
+    # equal margins: the larger Rs, then the shorter run
+    # (two runs, 2.5-3.5 and 4.5-5.5, middles pH 3 and 5 at margin 0.5 each)
+    rs3 = np.array([1.0, 2.0, 2.0, 2.0, 1.0, 2.0, 2.01, 2.0, 1.0])
+    assert ph[_best(rs3, run, ph)] == 5.0
+    rs3[2] = 2.01
+    run3 = run.copy()
+    run3[2] = 8.0
+    assert ph[_best(rs3, run3, ph)] == 3.0
+
+
+def test_windows_text_names_single_points():
+    # a window of one scan point is not a range; the text must say so, not print "2-4; 6"
+    assert _windows_text([(2.0, 4.0), (6.0, 6.0)]) == "2-4 and 6 (one point)"
+    assert _windows_text([(2.0, 3.0), (4.5, 5.0), (7.0, 7.0)]) == "2-3, 4.5-5 and 7 (one point)"
+    assert _windows_text([(3.0, 5.0)]) == "3-5"
+    assert _windows_text([]) == ""
 
 
 def test_phase_scan_c18_retains_longer_and_own_hsm_column(small_model):
