@@ -374,8 +374,9 @@ class ScanResult:
     ``run_time_min`` is the time of the last eluting analyte (the shortest useful run);
     ``program_end_min`` the pump program's end. ``min_resolution`` is the smallest
     neighbour Rs = (t2 - t1) / (2 (sigma1 + sigma2)) among eluted analytes (NaN with fewer
-    than two). ``best_index`` maximises the smallest Rs (ties within 0.01: shorter run); in
-    a pH scan it is the middle of the plateau within 5 % of the largest (:func:`_best`).
+    than two). ``best_index`` (:func:`_best`): in a pH scan the middle of the plateau within
+    5 % of the largest smallest Rs; in a gradient-time scan the shortest run with every pair
+    at ``rs_target``, else the largest smallest Rs (ties within 0.01: shorter run).
     ``robust_windows`` are (lo, hi) settings of contiguous evaluated points with smallest
     Rs >= ``rs_target`` (a skipped point ends a window).
     """
@@ -461,8 +462,12 @@ PH_BEST_RS_SHARE = 0.05
 
 
 def _best(min_rs: np.ndarray, run_min: np.ndarray, values: np.ndarray | None = None,
-          gaps: np.ndarray | None = None) -> int:
+          gaps: np.ndarray | None = None, rs_target: float | None = None) -> int:
     """Index of the best point: the largest smallest Rs (ties within 0.01: shorter run).
+
+    With ``rs_target`` (a gradient-time scan), the shortest run among the points whose
+    smallest Rs reaches the target, if any does: a longer ramp than that buys resolution
+    that the list does not need, at the price of run time (common practice).
 
     With ``values`` (a pH scan), every point within :data:`PH_BEST_RS_SHARE` of the
     largest smallest Rs is a candidate, and the one farthest from the ends of its run of
@@ -476,6 +481,10 @@ def _best(min_rs: np.ndarray, run_min: np.ndarray, values: np.ndarray | None = N
     if not np.isfinite(min_rs).any():
         return int(np.argmin(run_key))
     top = np.nanmax(min_rs)
+    enough = np.isfinite(min_rs) & (min_rs >= (np.inf if rs_target is None else rs_target))
+    if enough.any():
+        cand = np.flatnonzero(enough)
+        return int(cand[np.argmin(run_key[cand])])
     if values is None:
         cand = np.flatnonzero(np.isfinite(min_rs) & (min_rs >= top - 0.01))
         return int(cand[np.argmin(run_key[cand])])
@@ -543,7 +552,10 @@ def _assemble(method: Method, setting: str, values, names, rt, sigma, plates, st
     if (n_eluted < 2).any():
         warnings.append("fewer than two analytes elute at some points: no resolution there")
     vals = np.asarray(values, dtype=float)
-    best = _best(min_rs, run, vals if setting == SETTING_PH else None, gaps)
+    if setting == SETTING_PH:
+        best = _best(min_rs, run, vals, gaps)
+    else:
+        best = _best(min_rs, run, rs_target=rs_target)
     return ScanResult(
         setting=setting, values=np.asarray(values, dtype=float), names=list(names), rt_min=rt,
         peak_width_min=4.0 * sigma, charge=charge, status=status, min_resolution=min_rs,
@@ -860,15 +872,25 @@ def describe_scan(result: ScanResult) -> list[str]:
     b = result.best_index
     what = _setting_text(result, result.best_value)
     rs = result.min_resolution[b]
+    gradient = result.setting == SETTING_GRADIENT_TIME
+    shortest = gradient and np.isfinite(rs) and rs >= result.rs_target
+    if shortest:
+        what += f", the shortest run with every pair at Rs >= {result.rs_target:g}"
     if np.isfinite(rs):
         lines.append(f"best: {what} (smallest Rs {rs:.2f}, {result.critical_pair[b]}; "
                      f"last peak {result.run_time_min[b]:.2f} min)")
     else:
         lines.append(f"best: {what} (fewer than two peaks)")
-    unit = "pH" if result.setting == SETTING_PH else "min"
+    if shortest:
+        top = int(np.nanargmax(result.min_resolution))
+        if result.min_resolution[top] > rs + 0.01:
+            lines.append(f"most resolution: {_setting_text(result, result.values[top])} "
+                         f"(smallest Rs {result.min_resolution[top]:.2f}; last peak "
+                         f"{result.run_time_min[top]:.2f} min)")
     if result.robust_windows:
-        lines.append(f"Rs >= {result.rs_target:g} over {unit} "
-                     f"{_windows_text(result.robust_windows)}")
+        where = (f"{_windows_text(result.robust_windows)} min ramps" if gradient
+                 else f"pH {_windows_text(result.robust_windows)}")
+        lines.append(f"Rs >= {result.rs_target:g} over {where}")
     elif not np.isfinite(result.min_resolution).any():
         lines.append("no pair to separate at any setting (fewer than two analytes elute)")
     else:

@@ -295,6 +295,13 @@ def test_gradient_time_scan_matches_lss_closed_form(small_model):
     # longer gradients: later peaks and more peak capacity (common practice)
     assert np.all(np.diff(res.rt_min, axis=0) > 0)
     assert np.all(np.diff(res.peak_capacity) > 0)
+    # the best ramp: the shortest that meets the target, else the most resolving one
+    ok = res.min_resolution >= res.rs_target
+    if ok.any():
+        assert res.best_index == np.flatnonzero(ok)[0]
+        assert "the shortest run with every pair" in describe_scan(res)[0]
+    else:
+        assert res.best_index == int(np.nanargmax(res.min_resolution))
 
 
 # --- pressure and efficiency ---------------------------------------------------------------
@@ -389,6 +396,17 @@ def test_best_ph_is_the_middle_of_the_plateau_not_its_edge():
     run3 = run.copy()
     run3[2] = 8.0
     assert ph[_best(rs3, run3, ph)] == 3.0
+
+
+def test_best_gradient_time_is_the_shortest_run_that_meets_the_target():
+    # common practice: the shortest ramp that resolves every pair, not the longest scanned
+    tg = np.arange(5.0, 41.0, 5.0)
+    rs = np.array([1.27, 1.78, 2.06, 2.24, 2.36, 2.44, 2.50, 2.55])
+    run = tg * 0.6 + 4.0
+    assert tg[_best(rs, run, rs_target=1.5)] == 10.0
+    assert tg[_best(rs, run, rs_target=2.3)] == 25.0
+    # no point reaches the target: the largest smallest Rs
+    assert tg[_best(rs, run, rs_target=3.0)] == 40.0
 
 
 def test_windows_text_names_single_points():
