@@ -793,8 +793,9 @@ def _suggest(summary: pd.DataFrame, rs_target: float) -> str:
     b = summary.iloc[0]
     where = f"{b.phase} at pH {b.best_ph:g}"
     if b.n_unresolved == 0 and np.isfinite(b.min_resolution):
-        text = f"{where} resolves all pairs (smallest Rs {b.min_resolution:.2f}"
-        text += f"; Rs >= {rs_target:g} over pH {b.robust_windows})" if b.robust_windows else ")"
+        text = f"{where} resolves all pairs (smallest Rs {b.min_resolution:.2f})"
+        if b.robust_windows:
+            text += f"; Rs >= {rs_target:g} over pH {b.robust_windows}"
     else:
         text = (f"{where} separates this list best but leaves {b.n_unresolved} pair(s) below "
                 f"Rs {rs_target:g} (worst {b.worst_pair}, Rs {b.min_resolution:.2f})")
