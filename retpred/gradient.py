@@ -92,6 +92,14 @@ class ElutionProgram:
         """Inlet organic fraction after ``volume_ml`` has been pumped."""
         return np.interp(volume_ml, self.volume_ml, self.phi)
 
+    def phi_outlet(self, time_min: np.ndarray) -> np.ndarray:
+        """Organic fraction leaving the column (reaching the detector) at clock time
+        ``time_min``: the inlet composition one dead volume earlier,
+        ``phi_out(t) = phi_in(V(t) - V0)`` (an unretained solvent front; retention-physics.md
+        section 3 for the delays)."""
+        v = self.volume_at_time(np.asarray(time_min, dtype=float)) - self.dead_volume_ml
+        return self.phi_inlet(v)
+
     @property
     def dead_time_min(self) -> float:
         """t0 at the initial flow."""

@@ -151,14 +151,31 @@ def _plot_end_min(tables) -> float:
     return 1.05 * max(ends) if ends else 1.05
 
 
+def _draw_organic(ax, program, end_min: float,
+                  label: str = "% organic at the column outlet (dashed)") -> None:
+    """% organic leaving the column (:meth:`ElutionProgram.phi_outlet`) on a right-hand
+    axis, dashed, so each peak can be read against the eluent that carries it."""
+    grid = np.linspace(0.0, end_min, 800)
+    right = ax.twinx()
+    right.plot(grid, 100.0 * program.phi_outlet(grid), color="#7f7f7f", lw=0.9, ls="--")
+    right.set_ylim(0, 145)
+    right.set_yticks([0, 25, 50, 75, 100])
+    right.set_ylabel(label, fontsize=8, color="#555555")
+
+
 def plot_chromatogram(
-    table: pd.DataFrame, path: Path, title: str, subtitle: str, *, force: bool, inputs=()
+    table: pd.DataFrame, path: Path, title: str, subtitle: str, *, force: bool, inputs=(),
+    program=None,
 ) -> None:
     """Simulated chromatogram: unit-area Gaussian peaks scaled to equal height, labelled,
-    critical pairs in red."""
+    critical pairs in red; with ``program`` (an ``ElutionProgram``) the organic share at
+    the column outlet as a dashed trace."""
     plt = pyplot()
     fig, ax = plt.subplots(figsize=(11, 4.8), dpi=110)
-    _draw_chromatogram(ax, table, _plot_end_min([table]))
+    end = _plot_end_min([table])
+    _draw_chromatogram(ax, table, end)
+    if program is not None:
+        _draw_organic(ax, program, end)
     ax.set_xlabel("time (min)")
     ax.set_ylabel("relative response (equal heights)")
     ax.set_title(title, fontsize=10, loc="left")
@@ -168,9 +185,11 @@ def plot_chromatogram(
     save_figure(fig, path, force=force, inputs=inputs)
 
 
-def comparison_figure(tables: dict[str, pd.DataFrame], labels: list[str], title: str):
+def comparison_figure(tables: dict[str, pd.DataFrame], labels: list[str], title: str,
+                      programs: dict | None = None):
     """Simulated chromatograms of the same list, one panel per label (top to bottom in the
-    order of ``labels``), on one time axis; returns the matplotlib figure."""
+    order of ``labels``), on one time axis; returns the matplotlib figure. ``programs``:
+    each label's ``ElutionProgram``, drawn as the organic share at the column outlet."""
     plt = pyplot()
     n = len(labels)
     fig, axes = plt.subplots(n, 1, figsize=(11, 1.2 + 2.3 * n), dpi=110, sharex=True,
@@ -178,13 +197,15 @@ def comparison_figure(tables: dict[str, pd.DataFrame], labels: list[str], title:
     end = _plot_end_min([tables[k] for k in labels])
     for ax, label in zip(axes[:, 0], labels, strict=True):
         _draw_chromatogram(ax, tables[label], end)
+        if programs and label in programs:
+            _draw_organic(ax, programs[label], end, label="% organic")
         ax.set_yticks([])
         ax.set_ylabel(label, rotation=0, ha="right", va="center", fontsize=8)
     axes[-1, 0].set_xlabel("time (min)")
     axes[0, 0].set_title(title, fontsize=10, loc="left", pad=48)
-    axes[-1, 0].text(0.0, -0.45, "Simulated from predicted times and widths (zero-shot); "
-                     "confirm by injection.", transform=axes[-1, 0].transAxes, fontsize=7,
-                     va="top")
+    foot = ("Simulated from predicted times and widths (zero-shot); confirm by injection."
+            + (" Dashed: % organic at the column outlet." if programs else ""))
+    axes[-1, 0].text(0.0, -0.45, foot, transform=axes[-1, 0].transAxes, fontsize=7, va="top")
     fig.tight_layout()
     return fig
 

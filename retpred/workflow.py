@@ -14,6 +14,7 @@ from rich.table import Table
 
 from retpred.calibration import Calibration
 from retpred.errors import InputError
+from retpred.gradient import program_from_method
 from retpred.io import (
     AnalyteChunk,
     atomic_output,
@@ -175,7 +176,8 @@ def run_predict(
         notes.append("no chromatogram drawn for a list this long")
     elif plot is not None:
         plot_chromatogram(table, plot, title=f"retpred: {Path(analytes).name}",
-                          subtitle=method_summary(method), force=force, inputs=inputs)
+                          subtitle=method_summary(method), force=force, inputs=inputs,
+                          program=prep.program)
     if not quiet:
         console = make_console()
         print_report(table, method_summary(method), notes, console)
@@ -305,7 +307,9 @@ def run_columns(analytes, method_path, *, phases=None, model=None, out=None, det
         title = (f"retpred: {Path(analytes).name}, "
                  + ("methods" if several else f"phases on {method_summary(method)}")
                  + " (best first)")
-        save_figure(comparison_figure(tables, labels, title), plot, force=force, inputs=inputs)
+        programs = {label: program_from_method(m) for label, m in entries}
+        save_figure(comparison_figure(tables, labels, title, programs), plot, force=force,
+                    inputs=inputs)
     if not quiet:
         console = make_console()
         title = ("Methods compared on the same list (each file's own column and conditions)"

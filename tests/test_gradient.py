@@ -166,3 +166,17 @@ def test_more_organic_elutes_earlier_and_higher_kw_later():
     grad = build_program([0, 10], [0.05, 0.95], [1, 1], dead_time_min=t0, dwell_volume_ml=0.5)
     rt = elute(np.array([1.0, 2.0, 3.0]), np.array([4.0, 4.0, 4.0]), grad).rt_min
     assert np.all(np.diff(rt) > 0)
+
+
+def test_outlet_composition_is_the_pump_program_delayed_by_dwell_and_dead_time():
+    # constant flow 0.4 mL/min, dwell 0.2 mL (0.5 min) and t0 0.5 min: what leaves the
+    # column at t is what the pump mixed at t - 1.0 min (delays: retention-physics.md
+    # section 3; the ramp value by hand: 5 + 90 x (4.0 - 0.5) / 9.5 = 38.16 %)
+    prog = build_program([0.0, 0.5, 10.0, 12.0], [0.05, 0.05, 0.95, 0.95], [0.4] * 4,
+                         dead_time_min=0.5, dwell_volume_ml=0.2)
+    t = np.array([0.0, 1.4, 5.0, 11.0, 11.5, 13.0])
+    expected = np.array([0.05, 0.05, 0.05 + 0.90 * 3.5 / 9.5, 0.95, 0.95, 0.95])
+    np.testing.assert_allclose(prog.phi_outlet(t), expected, atol=1e-12)
+    # the ramp reaches the outlet 1.0 min after it leaves the pump at 0.5 min
+    assert prog.phi_outlet(np.array([1.5]))[0] == pytest.approx(0.05)
+    assert prog.phi_outlet(np.array([1.6]))[0] > 0.05

@@ -54,3 +54,25 @@ def test_comparison_figure_one_panel_per_label_on_one_time_axis():
     np.testing.assert_allclose(tops, [2.0, 4.0, 8.0, 12.0], atol=x[1] - x[0])
     # critical peaks shaded: none on "late"; a and b (Rs 0.25, risk 0.8) and c (risk 0.6)
     assert len(axes[0].patches) == 0 and len(axes[1].patches) == 3
+
+
+def test_comparison_figure_draws_the_outlet_composition_of_each_method():
+    from retpred.gradient import build_program
+
+    # two programs differing only in dwell volume (0 and 1 mL at 1 mL/min): the dashed
+    # trace of each panel is that program's phi_outlet, so the second starts 1 min later
+    fast = build_program([0.0, 10.0], [0.1, 0.9], [1.0, 1.0], dead_time_min=1.0,
+                         dwell_volume_ml=0.0)
+    slow = build_program([0.0, 10.0], [0.1, 0.9], [1.0, 1.0], dead_time_min=1.0,
+                         dwell_volume_ml=1.0)
+    fig = comparison_figure({"a": _table(), "b": _table()}, ["a", "b"], "t",
+                            {"a": fast, "b": slow})
+    twins = [ax for ax in fig.axes if ax.get_ylabel() == "% organic"]
+    assert len(twins) == 2
+    for ax, prog, delay in zip(twins, (fast, slow), (1.0, 2.0), strict=True):
+        x, y = ax.lines[0].get_data()
+        np.testing.assert_allclose(y, 100.0 * prog.phi_outlet(x))
+        # by hand: 10 % until the delay, then +8 % per min
+        on = x > delay
+        np.testing.assert_allclose(y[on], 10.0 + 8.0 * (x[on] - delay), atol=1e-9)
+        assert np.allclose(y[~on], 10.0)
