@@ -174,7 +174,8 @@ def scan(
         str | None, typer.Option(help="pH range start:stop:step, e.g. 2:8:0.1")
     ] = None,
     gradient_time: Annotated[
-        str | None, typer.Option(help="Main ramp duration range in min, e.g. 5:60:5")
+        str | None, typer.Option(help="Main ramp duration range in min, e.g. 5:60:5 "
+                                  "(with --ph: a pH x ramp map)")
     ] = None,
     phases: Annotated[
         str | None, typer.Option(help="With --ph: also scan these phase classes ('all' or list)")
@@ -189,7 +190,7 @@ def scan(
     force: ForceOpt = False,
     quiet: QuietOpt = False,
 ) -> None:
-    """Scan pH or gradient time: resolution map, best setting, robust window, pressure."""
+    """Scan pH, gradient time or both: resolution map, best setting, robust window."""
 
     def body():
         from retpred.scan import run_scan

@@ -1,4 +1,5 @@
-"""Method-development levers: pH scan, gradient-time scan, phase x pH scan, pressure.
+"""Method-development levers: pH scan, gradient-time scan, phase x pH scan, pH x ramp map,
+pressure.
 
 A scan predicts every analyte at each setting of one lever and reports, per setting, the
 smallest neighbour resolution (the resolution map), the pair that sets it, the run time,
@@ -56,6 +57,7 @@ from retpred.model import (
 from retpred.peaks import peak_sigma_min, resolution
 from retpred.report import (
     CAUTION,
+    fmt_value,
     make_console,
     name_list,
     pyplot,
@@ -808,6 +810,131 @@ def _suggest(summary: pd.DataFrame, rs_target: float) -> str:
 # =============================================================================================
 
 
+@dataclass
+class JointScanResult:
+    """pH x gradient-time scan: one pH ``ScanResult`` per main-ramp duration, a summary row
+    per ramp (at its best pH), the chosen cell and a suggestion."""
+
+    ramps_min: np.ndarray
+    scans: list[ScanResult]
+    summary: pd.DataFrame
+    best_ramp_index: int
+    suggestion: str
+    method_text: str = ""
+
+
+def _best_ramp(summary: pd.DataFrame, rs_target: float) -> int:
+    """Row of the chosen ramp: the shortest run among the ramps whose best pH keeps every
+    pair at ``rs_target`` (the gradient-time rule of :func:`_best`), else the largest
+    smallest Rs (ties within 0.01: shorter run); -1 when no ramp has a point."""
+    rs = summary["min_resolution"].to_numpy(float)
+    run = summary["last_rt_min"].to_numpy(float)
+    if not np.isfinite(summary["best_ph"].to_numpy(float)).any():
+        return -1
+    return _best(rs, run, rs_target=rs_target)
+
+
+def ph_gradient_scan(
+    method: Method, model: RetentionModel, solutes: Solutes, names: Sequence[str],
+    ph_values, ramp_times_min, rs_target: float = DEFAULT_RS_TARGET,
+    calibration: Calibration | None = None,
+) -> JointScanResult:
+    """Joint pH x gradient-time scan: for each main-ramp duration (:func:`stretch_ramp`)
+    a pH scan (:func:`ph_scan`) with its best pH, then the chosen pair of settings: the
+    shortest run that keeps every pair at the target at its ramp's best pH, else the
+    largest smallest Rs. The usual two-lever map of method development (pH moves ionised
+    analytes, the ramp moves all of them); the levers interact, so scanning them one at a
+    time can miss the pair of settings that works."""
+    tg = np.unique(np.asarray(ramp_times_min, dtype=float).ravel())
+    if tg.size == 0 or not np.all(np.isfinite(tg)) or np.any(tg <= 0):
+        raise InputError("gradient times must be finite and > 0 min", field="--gradient-time")
+    scans = []
+    for ramp in tg:
+        r = ph_scan(stretch_ramp(method, float(ramp)), model, solutes, names, ph_values,
+                    rs_target, calibration)
+        scans.append(r)
+    rows = []
+    for ramp, r in zip(tg, scans, strict=True):
+        b = r.best_index
+        ok = b >= 0
+        rows.append({
+            "gradient_time_min": float(ramp),
+            "best_ph": r.best_value,
+            "min_resolution": r.best_min_resolution,
+            "worst_pair": r.critical_pair[b] if ok else "",
+            "n_unresolved": int(r.n_unresolved[b]) if ok else len(r.names),
+            "last_rt_min": float(r.run_time_min[b]) if ok else math.nan,
+            "robust_windows": _windows_text(r.robust_windows),
+        })
+    summary = pd.DataFrame(rows)
+    best = _best_ramp(summary, rs_target)
+    summary["best"] = np.arange(len(summary)) == best
+    if best < 0:
+        text = "no ramp gives a usable prediction over this pH range"
+    else:
+        b = summary.iloc[best]
+        where = f"a {b.gradient_time_min:g} min ramp at pH {b.best_ph:g}"
+        if b.n_unresolved == 0 and np.isfinite(b.min_resolution):
+            text = (f"{where} is the shortest run that resolves all pairs (smallest Rs "
+                    f"{b.min_resolution:.2f}, last peak {b.last_rt_min:.2f} min)")
+            if b.robust_windows:
+                text += f"; at that ramp Rs >= {rs_target:g} over pH {b.robust_windows}"
+        elif np.isfinite(b.min_resolution):
+            text = (f"{where} separates this list best but leaves {b.n_unresolved} pair(s) "
+                    f"below Rs {rs_target:g} (worst {b.worst_pair}, Rs {b.min_resolution:.2f})")
+        else:
+            text = f"{where}: fewer than two analytes elute, no pair to separate"
+        buf = _buffer_text(float(b.best_ph))
+        text += f"; buffers: {buf}" if buf else "; no common buffer within 1 pH unit"
+    return JointScanResult(ramps_min=tg, scans=scans, summary=summary, best_ramp_index=best,
+                           suggestion=text, method_text=method_summary(method))
+
+
+def joint_scan_frames(result: JointScanResult) -> tuple[pd.DataFrame, pd.DataFrame]:
+    """(long table, per-point summary) of a pH x gradient-time scan: the pH scans' frames
+    with a ``gradient_time_min`` column; ``best`` marks the chosen cell only."""
+    longs, pers = [], []
+    for i, (ramp, r) in enumerate(zip(result.ramps_min, result.scans, strict=True)):
+        lg, pr = scan_to_frame(r), scan_summary_frame(r)
+        lg.insert(1, "gradient_time_min", float(ramp))
+        pr.insert(1, "gradient_time_min", float(ramp))
+        pr["best"] = pr["best"] & (i == result.best_ramp_index)
+        longs.append(lg)
+        pers.append(pr)
+    return pd.concat(longs, ignore_index=True), pd.concat(pers, ignore_index=True)
+
+
+def plot_joint_scan(result: JointScanResult, path, *, force: bool = False, inputs=()) -> None:
+    """2-D resolution map: smallest Rs over pH (x) and ramp duration (y), the target as a
+    contour, skipped pH points blank, the chosen cell marked."""
+    plt = pyplot()
+    ph = np.unique(np.concatenate([r.values for r in result.scans]))
+    grid = np.full((result.ramps_min.size, ph.size), np.nan)
+    for i, r in enumerate(result.scans):
+        grid[i, np.searchsorted(ph, r.values)] = r.min_resolution
+    fig, ax = plt.subplots(figsize=(10, 6), dpi=110)
+    top = max(3.0, float(np.nanmax(grid)) if np.isfinite(grid).any() else 3.0)
+    mesh = ax.pcolormesh(ph, result.ramps_min, grid, shading="nearest", cmap="viridis",
+                         vmin=0.0, vmax=top)
+    fig.colorbar(mesh, ax=ax, label="smallest Rs")
+    rs_target = result.scans[0].rs_target if result.scans else DEFAULT_RS_TARGET
+    if ph.size > 1 and result.ramps_min.size > 1 and np.isfinite(grid).sum() > 3:
+        ax.contour(ph, result.ramps_min, np.nan_to_num(grid, nan=0.0), levels=[rs_target],
+                   colors="white", linewidths=1.2)
+    if result.best_ramp_index >= 0:
+        b = result.summary.iloc[result.best_ramp_index]
+        ax.plot([b.best_ph], [b.gradient_time_min], marker="o", mfc="none", mec="#c00000",
+                ms=12, mew=2)
+    ax.set_xlabel("pH")
+    ax.set_ylabel("gradient ramp time (min)")
+    ax.set_title(f"retpred scan: smallest Rs over pH and ramp time (white: Rs {rs_target:g}; "
+                 "circle: chosen)", fontsize=10, loc="left")
+    ax.text(0.0, -0.12, result.method_text + "\nPredicted; confirm by injection.",
+            transform=ax.transAxes, fontsize=7, va="top")
+    fig.tight_layout()
+    save_figure(fig, path, force=force, inputs=inputs)
+
+
 def scan_to_frame(result: ScanResult) -> pd.DataFrame:
     """Long table, one row per (setting, analyte): setting, value, column, analyte, rt_min,
     peak_width_min, charge, status, plus the point's min_resolution and critical_pair."""
@@ -957,6 +1084,13 @@ def plot_scan(result: ScanResult, path, *, force: bool = False, inputs=()) -> No
 # =============================================================================================
 
 
+def _ramp_values(text: str) -> np.ndarray:
+    values = parse_range(text, "--gradient-time", 0.0)
+    if values.min() <= 0:
+        raise InputError("gradient times must be > 0 min", field="--gradient-time")
+    return values
+
+
 def parse_range(text: str, field_name: str, lo_limit: float = -math.inf,
                 hi_limit: float = math.inf) -> np.ndarray:
     """'start:stop:step' (inclusive of stop when it lies on the grid), or 'a,b,c', or one
@@ -1006,10 +1140,13 @@ def run_scan(analytes, method_path, *, ph: str | None = None, gradient_time: str
 
     inputs = [analytes, method_path, model, calibrants, calibration]
     check_outputs([out, summary_out, plot], inputs, force)
-    if (ph is None) == (gradient_time is None):
-        raise InputError("give --ph or --gradient-time (one of them)")
+    if ph is None and gradient_time is None:
+        raise InputError("give --ph or --gradient-time (or both, for a pH x ramp map)")
     if phases is not None and ph is None:
         raise InputError("--phases needs --ph (a phase x pH scan)", field="--phases")
+    if phases is not None and gradient_time is not None:
+        raise InputError("--phases scans phases over pH at the method's gradient; give "
+                         "--gradient-time without --phases", field="--phases")
     if phases is not None and (calibrants is not None or calibration is not None):
         raise InputError("a calibration belongs to the method's column; --phases compares "
                          "other columns, so scan them without it", field="--phases")
@@ -1019,8 +1156,13 @@ def run_scan(analytes, method_path, *, ph: str | None = None, gradient_time: str
     cal = prep.calibration
     smiles, names = read_smiles_list(analytes)
     sol = featurise(smiles)
-    phase_result = None
-    if ph is not None:
+    phase_result = joint = None
+    if ph is not None and gradient_time is not None:
+        ramps = _ramp_values(gradient_time)
+        joint = ph_gradient_scan(method, mdl, sol, names, parse_range(ph, "--ph", 0.0, 14.0),
+                                 ramps, rs_target, calibration=cal)
+        results = joint.scans
+    elif ph is not None:
         values = parse_range(ph, "--ph", 0.0, 14.0)
         if phases is not None:
             chosen = None if phases.strip().lower() == "all" else parse_phases(phases)
@@ -1030,18 +1172,20 @@ def run_scan(analytes, method_path, *, ph: str | None = None, gradient_time: str
         else:
             results = [ph_scan(method, mdl, sol, names, values, rs_target, calibration=cal)]
     else:
-        values = parse_range(gradient_time, "--gradient-time", 0.0)
-        if values.min() <= 0:
-            raise InputError("gradient times must be > 0 min", field="--gradient-time")
-        results = [gradient_time_scan(method, mdl, sol, names, values, rs_target,
-                                      calibration=cal)]
-    long = pd.concat([scan_to_frame(r) for r in results], ignore_index=True)
-    per = pd.concat([scan_summary_frame(r) for r in results], ignore_index=True)
+        results = [gradient_time_scan(method, mdl, sol, names, _ramp_values(gradient_time),
+                                      rs_target, calibration=cal)]
+    if joint is not None:
+        long, per = joint_scan_frames(joint)
+    else:
+        long = pd.concat([scan_to_frame(r) for r in results], ignore_index=True)
+        per = pd.concat([scan_summary_frame(r) for r in results], ignore_index=True)
     if out is not None:
         write_csv(long, Path(out), force=force, inputs=inputs)
     if summary_out is not None:
         write_csv(per, Path(summary_out), force=force, inputs=inputs)
-    if plot is not None:
+    if plot is not None and joint is not None:
+        plot_joint_scan(joint, Path(plot), force=force, inputs=inputs)
+    elif plot is not None:
         best = results[0] if phase_result is None else \
             phase_result.scans[phase_result.summary.loc[0, "phase"]]
         plot_scan(best, Path(plot), force=force, inputs=inputs)
@@ -1065,7 +1209,26 @@ def run_scan(analytes, method_path, *, ph: str | None = None, gradient_time: str
                           r.robust_windows or "-")
             console.print(t)
             console.print(f"[bold]suggestion:[/] {phase_result.suggestion}")
-        for r in results if phase_result is None else results[:0]:
+        if joint is not None:
+            t = Table(title="Ramp durations over the pH range (each at its best pH)")
+            for c in ("ramp min", "best pH", "smallest Rs", "worst pair", "pairs below",
+                      "last peak min", f"Rs >= {rs_target:g} over pH"):
+                t.add_column(c)
+            for r in joint.summary.itertuples():
+                mark = " *" if r.best else ""
+                best_ph = f"{r.best_ph:g}" if np.isfinite(r.best_ph) else "-"
+                t.add_row(f"{r.gradient_time_min:g}{mark}", best_ph,
+                          fmt_value(r.min_resolution), r.worst_pair or "-",
+                          str(r.n_unresolved), fmt_value(r.last_rt_min),
+                          r.robust_windows or "-")
+            console.print(t)
+            console.print(f"[bold]suggestion:[/] {joint.suggestion}")
+            if joint.scans:
+                p = joint.scans[0].pressure
+                console.print(f"column pressure up to {p['max_pressure_bar']:.0f} bar of "
+                              f"{p['limit_bar']:.0f} bar ({p['limit_source']})")
+        singles = results if phase_result is None and joint is None else []
+        for r in singles:
             for line in describe_scan(r):
                 console.print(line)
         seen = set()
@@ -1078,4 +1241,6 @@ def run_scan(analytes, method_path, *, ph: str | None = None, gradient_time: str
         for p in (out, summary_out, plot):
             if p is not None:
                 console.print(f"wrote {p}")
+    if joint is not None:
+        return joint
     return results if phase_result is None else phase_result

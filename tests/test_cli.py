@@ -92,6 +92,27 @@ def test_columns_and_scan_name_the_unusable_analyte_and_show_the_caution(
     assert "confirm them by injecting" in flat
 
 
+def test_scan_ph_and_gradient_time_together_give_a_map(shipped_model, analytes, demo_dir,
+                                                       tmp_path):
+    # both levers at once: one summary row per (ramp, pH), one chosen cell, a PNG map;
+    # the chosen ramp and pH are the ones the terminal names
+    summ, png = tmp_path / "s.csv", tmp_path / "map.png"
+    res = run("scan", analytes, "-m", demo_dir / "method.toml", "--ph", "2.5:4.5:0.5",
+              "--gradient-time", "5:15:5", "--summary-out", summ, "--plot", png)
+    assert res.exit_code == 0, res.output
+    per = pd.read_csv(summ)
+    assert len(per) == 3 * 5 and set(per.gradient_time_min) == {5.0, 10.0, 15.0}
+    chosen = per[per.best]
+    assert len(chosen) == 1
+    flat = " ".join(res.output.split())
+    assert (f"a {chosen.gradient_time_min.iloc[0]:g} min ramp at pH "
+            f"{chosen.value.iloc[0]:g}") in flat
+    assert png.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"  # PNG signature (ISO/IEC 15948)
+    bad = run("scan", analytes, "-m", demo_dir / "method.toml", "--ph", "2:4:1",
+              "--gradient-time", "5:15:5", "--phases", "C8")
+    assert bad.exit_code == 2 and "--phases" in bad.output and "Traceback" not in bad.output
+
+
 def test_columns_detail_matches_predict_on_that_phase(shipped_model, analytes, demo_dir,
                                                       tmp_path):
     # the per-phase detail is the prediction path itself: the C8 rows are what `predict`

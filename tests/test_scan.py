@@ -32,11 +32,14 @@ from retpred.model import COLUMN_TERM_NAMES, SystemContext, featurise
 from retpred.predict import add_pairs, predict_solutes, prepare, system_context
 from retpred.scan import (
     _best,
+    _best_ramp,
     _windows_text,
     buffers_for_ph,
     describe_scan,
     gradient_time_scan,
+    joint_scan_frames,
     parse_range,
+    ph_gradient_scan,
     ph_scan,
     phase_ph_scan,
     plot_scan,
@@ -302,6 +305,46 @@ def test_gradient_time_scan_matches_lss_closed_form(small_model):
         assert "the shortest run with every pair" in describe_scan(res)[0]
     else:
         assert res.best_index == int(np.nanargmax(res.min_resolution))
+
+
+def test_joint_ph_gradient_scan_agrees_with_the_one_lever_scans(small_model, acid_base):
+    # two code paths: the joint scan runs a pH scan per stretched ramp; gradient_time_scan
+    # computes retention once at the method's pH and builds one program per ramp. At the
+    # method's pH (7.0, a grid point) their times must be the same numbers.
+    sol, names = acid_base
+    method = _method(program=((0.0, 5.0, 1.0), (10.0, 95.0, 1.0), (14.0, 95.0, 1.0)))
+    ph = parse_range("3:9:1", "--ph")
+    ramps = np.array([5.0, 10.0, 20.0])
+    joint = ph_gradient_scan(method, small_model, sol, names, ph, ramps)
+    one = gradient_time_scan(method, small_model, sol, names, ramps)
+    at7 = int(np.flatnonzero(ph == 7.0)[0])
+    for i in range(ramps.size):
+        np.testing.assert_allclose(joint.scans[i].rt_min[at7], one.rt_min[i], rtol=1e-9)
+    # and each ramp's row is the pH scan of the stretched method, at its own best pH
+    for i, ramp in enumerate(ramps):
+        alone = ph_scan(stretch_ramp(method, ramp), small_model, sol, names, ph)
+        row = joint.summary.iloc[i]
+        assert row.best_ph == alone.best_value
+        assert row.min_resolution == pytest.approx(alone.best_min_resolution)
+    assert joint.summary["best"].sum() == 1
+    long, per = joint_scan_frames(joint)
+    assert len(long) == ramps.size * ph.size * len(names)
+    assert per["best"].sum() == 1
+    chosen = per[per.best].iloc[0]
+    assert chosen.gradient_time_min == joint.ramps_min[joint.best_ramp_index]
+
+
+def test_best_ramp_is_the_shortest_run_that_resolves_all_pairs():
+    # hand example: ramps 5-20 min, each at its best pH
+    summary = pd.DataFrame({
+        "gradient_time_min": [5.0, 10.0, 15.0, 20.0],
+        "best_ph": [3.0, 3.0, 6.5, 3.0],
+        "min_resolution": [1.2, 1.6, 2.4, 2.2],
+        "last_rt_min": [6.0, 9.0, 12.0, 15.0],
+    })
+    assert _best_ramp(summary, 1.5) == 1  # 10 min: the first to reach 1.5
+    assert _best_ramp(summary, 2.0) == 2  # 15 min, not the 20 min ramp with a later peak
+    assert _best_ramp(summary, 3.0) == 2  # none reaches 3: the largest smallest Rs
 
 
 # --- pressure and efficiency ---------------------------------------------------------------
