@@ -883,9 +883,10 @@ def ph_gradient_scan(
             text = (f"{where} separates this list best but leaves {b.n_unresolved} pair(s) "
                     f"below Rs {rs_target:g} (worst {b.worst_pair}, Rs {b.min_resolution:.2f})")
         else:
-            text = f"{where}: fewer than two analytes elute, no pair to separate"
-        buf = _buffer_text(float(b.best_ph))
-        text += f"; buffers: {buf}" if buf else "; no common buffer within 1 pH unit"
+            text = "fewer than two analytes elute at any setting: no pair to separate"
+        if np.isfinite(b.min_resolution):
+            buf = _buffer_text(float(b.best_ph))
+            text += f"; buffers: {buf}" if buf else "; no common buffer within 1 pH unit"
     return JointScanResult(ramps_min=tg, scans=scans, summary=summary, best_ramp_index=best,
                            suggestion=text, method_text=method_summary(method))
 

@@ -332,6 +332,10 @@ def test_joint_ph_gradient_scan_agrees_with_the_one_lever_scans(small_model, aci
     assert per["best"].sum() == 1
     chosen = per[per.best].iloc[0]
     assert chosen.gradient_time_min == joint.ramps_min[joint.best_ramp_index]
+    # one analyte: nothing to separate, and no setting or buffer is recommended
+    lone = ph_gradient_scan(method, small_model, featurise([BENZOIC_ACID]), ["benzoic acid"],
+                            ph, ramps)
+    assert lone.suggestion == "fewer than two analytes elute at any setting: no pair to separate"
 
 
 def test_best_ramp_is_the_shortest_run_that_resolves_all_pairs():
