@@ -609,8 +609,9 @@ def _check_names(solutes: Solutes, names: Sequence[str]) -> list[str]:
 
 def _ph_scans(method: Method, model: RetentionModel, solutes: Solutes, names,
               ph_values, columns: Mapping[str, Column], rs_target: float,
-              calibration: Calibration | None) -> dict[str, ScanResult]:
-    """pH scans of several columns (same geometry and program) with one batched model call."""
+              calibration: Calibration | None, coverage: bool = True) -> dict[str, ScanResult]:
+    """pH scans of several columns (same geometry and program) with one batched model call
+    (``coverage``: warn where analytes leave the calibrants' time window)."""
     names = _check_names(solutes, names)
     prog_t0 = _t0(method)
     pressure = pressure_report(method)
@@ -643,7 +644,7 @@ def _ph_scans(method: Method, model: RetentionModel, solutes: Solutes, names,
             rt = sigma = plates = charge = np.empty(shape)
             status = np.empty(shape, dtype=str)
         warn = base_warn + _skip_warning(col, skipped, lab)
-        if calibration is not None:
+        if calibration is not None and coverage:
             warn += _ph_coverage(calibration, rt, kept)
         if kept.size == 0:
             warn.append(f"{lab}: no pH point lies inside the column's usable range")
@@ -654,7 +655,8 @@ def _ph_scans(method: Method, model: RetentionModel, solutes: Solutes, names,
     return out
 
 
-def _ph_coverage(calibration: Calibration, rt: np.ndarray, ph_values: np.ndarray) -> list[str]:
+def _ph_coverage(calibration: Calibration, rt: np.ndarray, ph_values: np.ndarray,
+                 suffix: str = "") -> list[str]:
     """The calibration's coverage warning over the points of a pH scan (same program as
     the calibrants', so their time window applies at every point), naming the pH range of
     the points where some analyte is outside it."""
@@ -662,25 +664,27 @@ def _ph_coverage(calibration: Calibration, rt: np.ndarray, ph_values: np.ndarray
     if not points.any():
         return []
     where = (f" at {int(points.sum())} of {points.size} pH points "
-             f"(pH {ph_values[points].min():g}-{ph_values[points].max():g})")
+             f"(pH {ph_values[points].min():g}-{ph_values[points].max():g}){suffix}")
     return [coverage_warning(calibration, rt[points], where)]
 
 
 def ph_scan(
     method: Method, model: RetentionModel, solutes: Solutes, names: Sequence[str],
     ph_values, rs_target: float = DEFAULT_RS_TARGET, calibration: Calibration | None = None,
+    coverage: bool = True,
 ) -> ScanResult:
     """Predicted times of every analyte at each pH of ``ph_values`` on the method's column.
 
     Per pH: Henderson-Hasselbalch ionisation of the assigned sites, species-weighted
     ``log kw`` (retention-physics.md section 4), the column's cation-exchange term C(pH),
     then the exact LSS gradient engine and Knox/Wilke-Chang peak widths. Points outside
-    ``column.ph_min``-``ph_max`` are skipped with a warning.
+    ``column.ph_min``-``ph_max`` are skipped with a warning; with a ``calibration`` and
+    ``coverage``, so are the points where analytes leave the calibrants' time window.
     """
     label = method.column.phase if method.column.hsm is None else \
         f"{method.column.phase} (own HSM parameters)"
     return _ph_scans(method, model, solutes, names, ph_values, {label: method.column},
-                     rs_target, calibration)[label]
+                     rs_target, calibration, coverage)[label]
 
 
 def gradient_time_scan(
@@ -848,11 +852,18 @@ def ph_gradient_scan(
     tg = np.unique(np.asarray(ramp_times_min, dtype=float).ravel())
     if tg.size == 0 or not np.all(np.isfinite(tg)) or np.any(tg <= 0):
         raise InputError("gradient times must be finite and > 0 min", field="--gradient-time")
-    scans = []
-    for ramp in tg:
-        r = ph_scan(stretch_ramp(method, float(ramp)), model, solutes, names, ph_values,
-                    rs_target, calibration)
-        scans.append(r)
+    scans = [ph_scan(stretch_ramp(method, float(ramp)), model, solutes, names, ph_values,
+                     rs_target, calibration, coverage=False) for ramp in tg]
+    if calibration is not None:
+        # the calibrants' window belongs to the method's own gradient; the correction acts on
+        # log kw, which the ramp does not change, so coverage is judged there (as in
+        # gradient_time_scan), once for the whole map
+        own = ph_scan(method, model, solutes, names, ph_values, rs_target, calibration,
+                      coverage=False)
+        cov = _ph_coverage(calibration, own.rt_min, own.values,
+                           " on the method's own gradient")
+        for r in scans:
+            r.warnings.extend(cov)
     rows = []
     for ramp, r in zip(tg, scans, strict=True):
         b = r.best_index

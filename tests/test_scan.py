@@ -607,3 +607,13 @@ def test_calibrated_scan_warns_where_analytes_leave_the_calibrants_window(small_
         warn = [w for w in res.warnings if "calibrants cover" in w]
         assert bool(warn) == expected
         assert all("on the method's own gradient" in w for w in warn)
+    # the pH x ramp map: the same points as the pH scan on the method's own gradient are
+    # named, once per map, whatever the other ramps do to the times
+    joint = ph_gradient_scan(method, small_model, sol, ["benzoic acid"], ph, [10.0, 40.0],
+                             calibration=cal)
+    for r in joint.scans:
+        warn = [w for w in r.warnings if "calibrants cover" in w]
+        assert warn == [f"calibrants cover {t_neutral - 0.5:.2f}-{t_neutral + 0.5:.2f} min; "
+                        f"1 analyte(s) are predicted outside that window at {out.sum()} of "
+                        f"{ph.size} pH points (pH {flagged.min():g}-{flagged.max():g}) on the "
+                        "method's own gradient, where the correction is extrapolated"]
