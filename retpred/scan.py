@@ -678,8 +678,8 @@ def ph_scan(
     Per pH: Henderson-Hasselbalch ionisation of the assigned sites, species-weighted
     ``log kw`` (retention-physics.md section 4), the column's cation-exchange term C(pH),
     then the exact LSS gradient engine and Knox/Wilke-Chang peak widths. Points outside
-    ``column.ph_min``-``ph_max`` are skipped with a warning; with a ``calibration`` and
-    ``coverage``, so are the points where analytes leave the calibrants' time window.
+    ``column.ph_min``-``ph_max`` are skipped with a warning. With a ``calibration`` (and
+    ``coverage``) a warning names the points where analytes leave the calibrants' window.
     """
     label = method.column.phase if method.column.hsm is None else \
         f"{method.column.phase} (own HSM parameters)"
