@@ -761,27 +761,37 @@ def phase_ph_scan(
     if not cols:
         raise InputError("no phase or column to scan", field="--phases")
     scans = _ph_scans(method, model, solutes, names, ph_values, cols, rs_target, None)
-    rows = []
-    for lab, r in scans.items():
-        b = r.best_index
-        ok = b >= 0
-        rows.append({
-            "phase": lab,
-            "best_ph": r.best_value,
-            "min_resolution": r.best_min_resolution,
-            "worst_pair": r.critical_pair[b] if ok else "",
-            "n_unresolved": int(r.n_unresolved[b]) if ok else len(r.names),
-            "last_rt_min": float(r.run_time_min[b]) if ok else math.nan,
-            "robust_windows": _windows_text(r.robust_windows),
-            "robust_width_ph": max((hi - lo for lo, hi in r.robust_windows), default=math.nan),
-        })
-    summary = pd.DataFrame(rows)
+    summary = pd.DataFrame([
+        {"phase": lab, **_best_point_row(r),
+         "robust_width_ph": max((hi - lo for lo, hi in r.robust_windows), default=math.nan)}
+        for lab, r in scans.items()])
     summary["_rs"] = summary["min_resolution"].fillna(-np.inf)
     summary = summary.sort_values(["n_unresolved", "_rs", "last_rt_min"],
                                   ascending=[True, False, True]).drop(columns="_rs")
     summary = summary.reset_index(drop=True)
     summary.insert(0, "rank", np.arange(1, len(summary) + 1))
     return PhaseScanResult(scans=scans, summary=summary, suggestion=_suggest(summary, rs_target))
+
+
+def _best_point_row(r: ScanResult) -> dict:
+    """A pH scan at its best point: best_ph, min_resolution, worst_pair, n_unresolved,
+    last_rt_min and its robust windows (text); one row of a phase or ramp summary."""
+    b = r.best_index
+    ok = b >= 0
+    return {
+        "best_ph": r.best_value,
+        "min_resolution": r.best_min_resolution,
+        "worst_pair": r.critical_pair[b] if ok else "",
+        "n_unresolved": int(r.n_unresolved[b]) if ok else len(r.names),
+        "last_rt_min": float(r.run_time_min[b]) if ok else math.nan,
+        "robust_windows": _windows_text(r.robust_windows),
+    }
+
+
+def _with_buffers(text: str, ph: float) -> str:
+    """``text`` and the buffers whose pKa lies within 1 unit of ``ph``."""
+    buf = _buffer_text(ph)
+    return text + (f"; buffers: {buf}" if buf else "; no common buffer within 1 pH unit")
 
 
 def _windows_text(windows: list[tuple[float, float]]) -> str:
@@ -805,8 +815,7 @@ def _suggest(summary: pd.DataFrame, rs_target: float) -> str:
     else:
         text = (f"{where} separates this list best but leaves {b.n_unresolved} pair(s) below "
                 f"Rs {rs_target:g} (worst {b.worst_pair}, Rs {b.min_resolution:.2f})")
-    buf = _buffer_text(float(b.best_ph))
-    return text + (f"; buffers: {buf}" if buf else "; no common buffer within 1 pH unit")
+    return _with_buffers(text, float(b.best_ph))
 
 
 # =============================================================================================
@@ -864,20 +873,8 @@ def ph_gradient_scan(
                            " on the method's own gradient")
         for r in scans:
             r.warnings.extend(cov)
-    rows = []
-    for ramp, r in zip(tg, scans, strict=True):
-        b = r.best_index
-        ok = b >= 0
-        rows.append({
-            "gradient_time_min": float(ramp),
-            "best_ph": r.best_value,
-            "min_resolution": r.best_min_resolution,
-            "worst_pair": r.critical_pair[b] if ok else "",
-            "n_unresolved": int(r.n_unresolved[b]) if ok else len(r.names),
-            "last_rt_min": float(r.run_time_min[b]) if ok else math.nan,
-            "robust_windows": _windows_text(r.robust_windows),
-        })
-    summary = pd.DataFrame(rows)
+    summary = pd.DataFrame([{"gradient_time_min": float(ramp), **_best_point_row(r)}
+                            for ramp, r in zip(tg, scans, strict=True)])
     best = _best_ramp(summary, rs_target)
     summary["best"] = np.arange(len(summary)) == best
     if best < 0:
@@ -896,8 +893,7 @@ def ph_gradient_scan(
         else:
             text = "fewer than two analytes elute at any setting: no pair to separate"
         if np.isfinite(b.min_resolution):
-            buf = _buffer_text(float(b.best_ph))
-            text += f"; buffers: {buf}" if buf else "; no common buffer within 1 pH unit"
+            text = _with_buffers(text, float(b.best_ph))
     return JointScanResult(ramps_min=tg, scans=scans, summary=summary, best_ramp_index=best,
                            suggestion=text, method_text=method_summary(method))
 
