@@ -23,6 +23,8 @@ import time
 import numpy as np
 import pandas as pd
 import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
 
 from retpred.column import column_hsm
 from retpred.errors import InputError, MethodError
@@ -443,6 +445,52 @@ def test_best_ph_is_the_middle_of_the_plateau_not_its_edge():
     run3 = run.copy()
     run3[2] = 8.0
     assert ph[_best(rs3, run3, ph)] == 3.0
+
+
+@settings(max_examples=200, deadline=None)
+@given(st.lists(st.one_of(st.floats(0.0, 5.0), st.just(float("nan"))), min_size=1,
+                max_size=25))
+def test_best_ph_rule_holds_for_any_resolution_map(rs_list):
+    # the rule as README states it: the chosen pH is within 5 % of the largest smallest Rs
+    # (0.01 at least), and no candidate lies deeper inside a run of candidates
+    rs = np.array(rs_list)
+    ph = np.round(2.0 + 0.25 * np.arange(rs.size), 2)
+    run = np.full(rs.size, 10.0)
+    i = _best(rs, run, ph)
+    assert 0 <= i < rs.size
+    if not np.isfinite(rs).any():
+        return
+    top = np.nanmax(rs)
+    floor = top - max(0.01, 0.05 * top)
+    good = np.isfinite(rs) & (rs >= floor)
+    assert good[i]
+
+    def depth(j):  # distance to the ends of j's run of consecutive candidates
+        lo = hi = j
+        while lo > 0 and good[lo - 1]:
+            lo -= 1
+        while hi < rs.size - 1 and good[hi + 1]:
+            hi += 1
+        return min(ph[j] - ph[lo], ph[hi] - ph[j])
+
+    assert depth(i) >= max(depth(j) for j in np.flatnonzero(good)) - 1e-9
+
+
+@settings(max_examples=200, deadline=None)
+@given(st.lists(st.tuples(st.floats(0.0, 4.0), st.floats(1.0, 60.0)), min_size=1,
+                max_size=15), st.floats(0.5, 3.0))
+def test_best_ramp_rule_holds_for_any_scan(points, target):
+    # README's rule: the shortest run among the points at the target; if none, the
+    # largest smallest Rs (ties within 0.01: the shorter run)
+    rs = np.array([p[0] for p in points])
+    run = np.array([p[1] for p in points])
+    i = _best(rs, run, rs_target=target)
+    ok = rs >= target
+    if ok.any():
+        assert ok[i] and run[i] == run[ok].min()
+    else:
+        assert rs[i] >= rs.max() - 0.01
+        assert run[i] == run[rs >= rs.max() - 0.01].min()
 
 
 def test_best_gradient_time_is_the_shortest_run_that_meets_the_target():
