@@ -492,7 +492,8 @@ def _best(min_rs: np.ndarray, run_min: np.ndarray, values: np.ndarray | None = N
         return int(cand[np.argmin(run_key[cand])])
     good = np.isfinite(min_rs) & (min_rs >= top - max(0.01, PH_BEST_RS_SHARE * top))
     margin = np.full(min_rs.size, -np.inf)
-    for lo, hi in robust_windows(values, np.where(good, 1.0, 0.0), 0.5, gaps):
+    # the runs of consecutive candidates are the "robust windows" of the 0/1 indicator
+    for lo, hi in robust_windows(values, good.astype(float), 0.5, gaps):
         inside = (values >= lo) & (values <= hi) & good
         margin[inside] = np.minimum(values[inside] - lo, hi - values[inside])
     rs_key = np.where(np.isfinite(min_rs), min_rs, -np.inf)
@@ -559,12 +560,12 @@ def _assemble(method: Method, setting: str, values, names, rt, sigma, plates, st
     else:
         best = _best(min_rs, run, rs_target=rs_target)
     return ScanResult(
-        setting=setting, values=np.asarray(values, dtype=float), names=list(names), rt_min=rt,
+        setting=setting, values=vals, names=list(names), rt_min=rt,
         peak_width_min=4.0 * sigma, charge=charge, status=status, min_resolution=min_rs,
         critical_pair=pairs, n_unresolved=n_below, run_time_min=run,
         program_end_min=np.broadcast_to(np.asarray(program_end, float), min_rs.shape).copy(),
         peak_capacity=pc, plates_median=plates_med, rs_target=rs_target, best_index=best,
-        robust_windows=robust_windows(np.asarray(values, float), min_rs, rs_target, gaps),
+        robust_windows=robust_windows(vals, min_rs, rs_target, gaps),
         skipped=np.asarray(skipped, dtype=float), pressure=pressure, column_label=label,
         method_text=method_summary(method), fixed_ph=fixed_ph, warnings=warnings,
     )
