@@ -837,14 +837,37 @@ class JointScanResult:
     method_text: str = ""
 
 
+#: pH x ramp map: the chosen pH must lie at least this far inside its robust window (pH
+#: units; our choice: twice the 0.1 unit to which a buffer is usually made up, common
+#: practice), so that a single passing pH point does not win on run time alone
+JOINT_MIN_PH_MARGIN = 0.2
+
+
+def _ph_margin(r: ScanResult) -> float:
+    """Distance (pH units) from the best pH of scan ``r`` to the nearer end of the robust
+    window that holds it; NaN when it lies in none."""
+    ph = r.best_value
+    for lo, hi in r.robust_windows:
+        if lo - _EPS <= ph <= hi + _EPS:
+            return float(min(ph - lo, hi - ph))
+    return math.nan
+
+
 def _best_ramp(summary: pd.DataFrame, rs_target: float) -> int:
     """Row of the chosen ramp: the shortest run among the ramps whose best pH keeps every
-    pair at ``rs_target`` (the gradient-time rule of :func:`_best`), else the largest
-    smallest Rs (ties within 0.01: shorter run); -1 when no ramp has a point."""
+    pair at ``rs_target`` at least :data:`JOINT_MIN_PH_MARGIN` inside its robust window
+    (``ph_margin``); else the shortest such run regardless of the margin (the
+    gradient-time rule of :func:`_best`); else the largest smallest Rs (ties within 0.01:
+    shorter run). -1 when no ramp has a point."""
     rs = summary["min_resolution"].to_numpy(float)
     run = summary["last_rt_min"].to_numpy(float)
     if not np.isfinite(summary["best_ph"].to_numpy(float)).any():
         return -1
+    margin = summary["ph_margin"].to_numpy(float)
+    robust = np.isfinite(rs) & (rs >= rs_target) & (margin >= JOINT_MIN_PH_MARGIN - _EPS)
+    if robust.any():
+        cand = np.flatnonzero(robust)
+        return int(cand[np.argmin(np.where(np.isfinite(run[cand]), run[cand], np.inf))])
     return _best(rs, run, rs_target=rs_target)
 
 
@@ -874,7 +897,8 @@ def ph_gradient_scan(
                            " on the method's own gradient")
         for r in scans:
             r.warnings.extend(cov)
-    summary = pd.DataFrame([{"gradient_time_min": float(ramp), **_best_point_row(r)}
+    summary = pd.DataFrame([{"gradient_time_min": float(ramp), **_best_point_row(r),
+                             "ph_margin": _ph_margin(r)}
                             for ramp, r in zip(tg, scans, strict=True)])
     best = _best_ramp(summary, rs_target)
     summary["best"] = np.arange(len(summary)) == best
@@ -884,10 +908,22 @@ def ph_gradient_scan(
         b = summary.iloc[best]
         where = f"a {b.gradient_time_min:g} min ramp at pH {b.best_ph:g}"
         if b.n_unresolved == 0 and np.isfinite(b.min_resolution):
-            text = (f"{where} is the shortest run that resolves all pairs (smallest Rs "
-                    f"{b.min_resolution:.2f}, last peak {b.last_rt_min:.2f} min)")
+            spare = b.ph_margin >= JOINT_MIN_PH_MARGIN - _EPS
+            text = (f"{where} is the shortest run that resolves all pairs"
+                    + (f" with +/- {JOINT_MIN_PH_MARGIN:g} pH to spare" if spare else "")
+                    + f" (smallest Rs {b.min_resolution:.2f}, last peak "
+                    f"{b.last_rt_min:.2f} min)")
             if b.robust_windows:
                 text += f"; at that ramp Rs >= {rs_target:g} over pH {b.robust_windows}"
+            if not spare:
+                text += (f"; no ramp keeps Rs >= {rs_target:g} over +/- "
+                         f"{JOINT_MIN_PH_MARGIN:g} pH around its best pH: not robust to pH")
+            shorter = summary[(summary.min_resolution >= rs_target)
+                              & (summary.last_rt_min < b.last_rt_min)]
+            if spare and len(shorter):
+                s = shorter.iloc[0]
+                text += (f"; a {s.gradient_time_min:g} min ramp reaches Rs {rs_target:g} "
+                         f"only near pH {s.best_ph:g}, without that margin")
         elif np.isfinite(b.min_resolution):
             text = (f"{where} separates this list best but leaves {b.n_unresolved} pair(s) "
                     f"below Rs {rs_target:g} (worst {b.worst_pair}, Rs {b.min_resolution:.2f})")

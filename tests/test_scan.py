@@ -347,10 +347,17 @@ def test_best_ramp_is_the_shortest_run_that_resolves_all_pairs():
         "best_ph": [3.0, 3.0, 6.5, 3.0],
         "min_resolution": [1.2, 1.6, 2.4, 2.2],
         "last_rt_min": [6.0, 9.0, 12.0, 15.0],
+        "ph_margin": [np.nan, 0.5, 1.0, 0.75],  # pH to the ends of the best pH's window
     })
     assert _best_ramp(summary, 1.5) == 1  # 10 min: the first to reach 1.5
     assert _best_ramp(summary, 2.0) == 2  # 15 min, not the 20 min ramp with a later peak
     assert _best_ramp(summary, 3.0) == 2  # none reaches 3: the largest smallest Rs
+    # a shorter ramp that reaches the target at a single pH point (margin 0) gives way to
+    # the shortest one with +/- 0.2 pH to spare
+    fragile = summary.assign(ph_margin=[np.nan, 0.0, 1.0, 0.75])
+    assert _best_ramp(fragile, 1.5) == 2
+    # none with a margin: the shortest run at the target all the same
+    assert _best_ramp(fragile.assign(ph_margin=[np.nan, 0.0, 0.1, 0.0]), 1.5) == 1
 
 
 # --- pressure and efficiency ---------------------------------------------------------------
