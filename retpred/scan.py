@@ -863,11 +863,9 @@ def _best_ramp(summary: pd.DataFrame, rs_target: float) -> int:
     run = summary["last_rt_min"].to_numpy(float)
     if not np.isfinite(summary["best_ph"].to_numpy(float)).any():
         return -1
-    margin = summary["ph_margin"].to_numpy(float)
-    robust = np.isfinite(rs) & (rs >= rs_target) & (margin >= JOINT_MIN_PH_MARGIN - _EPS)
-    if robust.any():
-        cand = np.flatnonzero(robust)
-        return int(cand[np.argmin(np.where(np.isfinite(run[cand]), run[cand], np.inf))])
+    spare = summary["ph_margin"].to_numpy(float) >= JOINT_MIN_PH_MARGIN - _EPS
+    if np.any(spare & (rs >= rs_target)):  # the ramps without the margin drop out
+        return _best(np.where(spare, rs, np.nan), run, rs_target=rs_target)
     return _best(rs, run, rs_target=rs_target)
 
 
