@@ -57,6 +57,9 @@ analyte unlike every calibrant gets almost nothing).
 Measured on the open data (283 left-out systems, 10 random calibrants), on the model of
 session 2: median error 3.56 % of the run with shift/linear/monotone only, 3.40 % with both
 additions. The current model's figure is on the model card (``models/MODEL_CARD.md``).
+Last, an analyte with a calibrant's structure gets that calibrant's remaining error too
+(``standard_offsets``, stored when the calibrants' traits carry their keys): it is
+predicted at its measured ``log kw``, i.e. at its measured time on the same method.
 
 Warnings: calibrants covering only part of the elution window of the analytes, and a
 calibrant whose leave-one-out error under the blend (the candidates' leave-one-out
@@ -76,9 +79,10 @@ from sklearn.isotonic import IsotonicRegression
 
 from retpred.errors import InputError
 
-#: written by this version; format 2 (no quadratic kind) is read too
-CALIBRATION_FORMAT = 3
-READABLE_FORMATS = (2, 3)
+#: written by this version; formats 2 (no quadratic kind) and 3 (no measured standards or
+#: method conditions) are read too
+CALIBRATION_FORMAT = 4
+READABLE_FORMATS = (2, 3, 4)
 SLOPE_BOUNDS = (0.5, 2.0)
 MIN_LINEAR = 3
 MIN_MONOTONE = 10
@@ -109,30 +113,41 @@ class SoluteTraits:
     ``logp``: Crippen log P; ``tpsa_a2``: topological polar surface area (A^2);
     ``fingerprints``: (n, bits) count fingerprints of the standardised structures;
     ``factors``: (n, rank) compound factors of the model (zero rows for structures it has
-    none for), or None.
+    none for), or None; ``keys``: the compound-memory key of each structure ("" for an
+    unusable row), which matches analytes to measured standards, or None (the validation
+    leaves it out: its analytes are never the calibrants).
     """
 
     logp: np.ndarray
     tpsa_a2: np.ndarray
     fingerprints: np.ndarray
     factors: np.ndarray | None = None
+    keys: np.ndarray | None = None
 
     @classmethod
-    def of(cls, solutes, idx=None, model=None) -> SoluteTraits:
+    def of(cls, solutes, idx=None, model=None, keys: bool = False) -> SoluteTraits:
         """Traits of a ``retpred.model.Solutes`` batch (rows ``idx``, default all), with the
-        compound factors of ``model`` (a ``RetentionModel``) when given."""
+        compound factors of ``model`` (a ``RetentionModel``) when given and the structures'
+        keys when ``keys``."""
         from retpred.chemistry import DESCRIPTOR_NAMES
 
         idx = np.arange(len(solutes)) if idx is None else np.asarray(idx)
         d = solutes.descriptors[idx]
         factors = model.factor_matrix(solutes, idx) if model is not None else None
+        key_arr = None
+        if keys:
+            all_keys = np.array([k if u else "" for k, u in
+                                 zip(solutes.memory_keys, solutes.usable, strict=True)],
+                                dtype=object)
+            key_arr = all_keys[idx] if all_keys.size else np.array([], dtype=object)
         return cls(logp=d[:, DESCRIPTOR_NAMES.index("logp")],
                    tpsa_a2=d[:, DESCRIPTOR_NAMES.index("tpsa")],
-                   fingerprints=solutes.fingerprints[idx], factors=factors)
+                   fingerprints=solutes.fingerprints[idx], factors=factors, keys=key_arr)
 
     def take(self, idx) -> SoluteTraits:
         return SoluteTraits(self.logp[idx], self.tpsa_a2[idx], self.fingerprints[idx],
-                            None if self.factors is None else self.factors[idx])
+                            None if self.factors is None else self.factors[idx],
+                            None if self.keys is None else self.keys[idx])
 
     def selectivity_terms(self) -> np.ndarray:
         return np.column_stack([self.logp, self.tpsa_a2 / 100.0])
@@ -262,6 +277,15 @@ class Calibration:
     #: ``RetentionModel.identity()`` of the model whose predictions were corrected ("" in
     #: files written before it was recorded)
     model_id: str = ""
+    #: measured standards (format 4): each usable calibrant's compound key and what is left
+    #: of its ``log kw`` error after the blend, so that an analyte with the same structure
+    #: gets its measured retention back (:meth:`apply`)
+    standard_keys: tuple[str, ...] = ()
+    standard_offsets: tuple[float, ...] = ()
+    #: ``retpred.method.retention_conditions`` and ``run_key`` of the method it was fitted
+    #: on (empty in files of format 3 or older)
+    conditions: dict = field(default_factory=dict)
+    run_key: str = ""
 
     @property
     def kind(self) -> str:
@@ -299,7 +323,43 @@ class Calibration:
         total = 0.0
         for m in self.maps:
             total = total + m.weight * m.apply(log_kw_pred, traits, fps)
-        return np.asarray(total, dtype=float)
+        total = np.asarray(total, dtype=float)
+        if self.standard_keys and traits is not None and traits.keys is not None:
+            hit, offset = self._standards(traits.keys)
+            total = total + np.where(hit, offset, 0.0)
+        return total
+
+    def _standards(self, keys: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        lookup = dict(zip(self.standard_keys, self.standard_offsets, strict=True))
+        offset = np.array([lookup.get(k, np.nan) if k else np.nan for k in keys], dtype=float)
+        return np.isfinite(offset), np.nan_to_num(offset)
+
+    def measured(self, traits: SoluteTraits | None) -> np.ndarray:
+        """True for analytes whose structure (compound key) is one of the calibrants': their
+        corrected ``log kw`` is the standard's measured one (an achiral column does not tell
+        enantiomers apart, and a racemate drawn without stereo marks shares the key)."""
+        if traits is None or traits.keys is None or not self.standard_keys:
+            n = 0 if traits is None else len(traits.logp)
+            return np.zeros(n, dtype=bool)
+        return self._standards(traits.keys)[0]
+
+    def condition_mismatch(self, method) -> str | None:
+        """A warning when ``method``'s pH, temperature, modifier or column differ from those
+        this calibration was fitted on (None when they agree or were not recorded)."""
+        from retpred.method import conditions_differ, retention_conditions
+
+        if not self.conditions:
+            return None
+        diff = conditions_differ(self.conditions, method)
+        if not diff:
+            return None
+        now = retention_conditions(method)
+        label = {"ph": "pH", "temperature_c": "temperature (C)", "organic": "modifier",
+                 "hsm": "column parameters"}
+        text = ", ".join(f"{label.get(k, k)} {_shown(self.conditions[k])} -> {_shown(now[k])}"
+                         for k in diff)
+        return (f"this calibration was fitted on other conditions ({text}): its correction "
+                "may not carry over; refit it with standards run on this method")
 
     def model_mismatch(self, model_id: str) -> str | None:
         """A warning when this calibration was fitted on another model's predictions."""
@@ -353,14 +413,27 @@ class Calibration:
             d["warnings"] = tuple(str(w) for w in d.get("warnings", ()))
             d["nb_fingerprints"] = tuple(tuple(int(v) for v in row)
                                          for row in d.get("nb_fingerprints", ()))
+            d["standard_keys"] = tuple(str(k) for k in d.get("standard_keys", ()))
+            d["standard_offsets"] = tuple(float(v) for v in d.get("standard_offsets", ()))
+            if not isinstance(d.get("conditions", {}), dict):
+                raise ValueError("conditions is not a table")
             cal = cls(**d)
         except (TypeError, ValueError) as exc:
             raise InputError(f"calibration file has a bad field ({exc})", path=path) from None
         n_fp = len(cal.nb_fingerprints)
         if any(m.nb_residuals and len(m.nb_residuals) != n_fp for m in cal.maps) or not (
-                abs(sum(m.weight for m in cal.maps) - 1.0) < 1e-6):
+                abs(sum(m.weight for m in cal.maps) - 1.0) < 1e-6) or (
+                len(cal.standard_keys) != len(cal.standard_offsets)):
             raise InputError("calibration file has inconsistent fields", path=path)
         return cal
+
+
+def _shown(value) -> str:
+    if isinstance(value, float):
+        return f"{value:g}"
+    if isinstance(value, list):
+        return "HSM " + "/".join(f"{float(v):g}" for v in value)
+    return "class median HSM" if value is None else str(value)
 
 
 def time_jacobian(rt_of: Callable[[np.ndarray], np.ndarray], log_kw: np.ndarray,
@@ -674,12 +747,32 @@ def fit_calibration(
     if dropped:
         warnings.append(f"{len(dropped)} calibrant(s) not usable (bad structure or rt well "
                         f"before t0): {', '.join(dropped)}")
-    return Calibration(
+    cal = Calibration(
         maps=maps, nb_fingerprints=nb_fp, n_factor_calibrants=n_fac, n_calibrants=n,
         loo_median_abs_error_min=blend_loo, loo_errors_min=loo,
         cal_rt_range_min=(float(ti.min()), float(ti.max())),
         warnings=tuple(warnings), method_summary=method_summary,
     )
+    if ti_traits is not None and ti_traits.keys is not None:
+        cal = _with_standards(cal, xi, yi, ti_traits)
+    return cal
+
+
+def _with_standards(cal: Calibration, x: np.ndarray, y: np.ndarray,
+                    traits: SoluteTraits) -> Calibration:
+    """``cal`` with each calibrant's remaining error ``y - blend(x)`` stored under its
+    compound key (the mean over replicate injections of one structure), so that the same
+    structure among the analytes is predicted at its measured ``log kw``: on the method of
+    the calibration that is its measured time, elsewhere its own offset carried like the
+    model's compound memory. A void calibrant's target is its bound (``min(mu, b)``)."""
+    left = y - cal.apply(x, traits)
+    keys = [str(k) for k in traits.keys]
+    out: dict[str, list[float]] = {}
+    for k, r in zip(keys, left, strict=True):
+        if k and np.isfinite(r):
+            out.setdefault(k, []).append(float(r))
+    return replace(cal, standard_keys=tuple(out),
+                   standard_offsets=tuple(float(np.mean(v)) for v in out.values()))
 
 
 def outside_window(cal: Calibration, rt_min: np.ndarray) -> np.ndarray:

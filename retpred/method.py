@@ -598,3 +598,60 @@ def method_summary(method: Method) -> str:
         program = f"{percents[i]:g}-{percents[j]:g} %B in {times[j] - times[i]:g} min"
     return (f"{c.phase} {c.length_mm:g} x {c.inner_diameter_mm:g} mm, {c.particle_um:g} um; "
             f"{mp.organic}, {ph}, {temp}; {flow}; {program}")
+
+
+def retention_conditions(method: Method) -> dict[str, Any]:
+    """What fixes a solute's ``log kw`` on a method (LSS, retention-physics.md section 2):
+    the stationary phase (its class, and its HSM parameters when given), the organic
+    modifier, the pH and the temperature. The program, flow, dwell volume and column
+    geometry change the times, not ``log kw``, so a correction fitted in retention space
+    carries over them."""
+    hsm = method.column.hsm
+    return {
+        "phase": method.column.phase,
+        "hsm": None if hsm is None else [getattr(hsm, k) for k in HSM_KEYS],
+        "organic": method.mobile_phase.organic,
+        "ph": method.ph,
+        "temperature_c": method.temperature_c,
+    }
+
+
+def conditions_differ(fitted: Mapping[str, Any], method: Method) -> list[str]:
+    """Names of the :func:`retention_conditions` of ``method`` that differ from ``fitted``
+    (pH and temperature within 0.05 units and 0.5 C count as equal); keys ``fitted`` lacks
+    are not compared."""
+    now = retention_conditions(method)
+    tol = {"ph": 0.05, "temperature_c": 0.5}
+    out = []
+    for key, value in now.items():
+        if key not in fitted:
+            continue
+        old = fitted[key]
+        if key in tol and old is not None and value is not None:
+            if abs(float(old) - float(value)) > tol[key]:
+                out.append(key)
+        elif key == "hsm" and old is not None and value is not None:
+            if any(abs(float(a) - float(b)) > 1e-9 for a, b in zip(old, value, strict=True)):
+                out.append(key)
+        elif old != value:
+            out.append(key)
+    return out
+
+
+def run_key(method: Method) -> str:
+    """A short hash of everything that fixes a predicted time on ``method``: its retention
+    conditions, column geometry and dead time, eluent compositions, pump program, flow and
+    dwell volume. Two method files with equal keys give the same times."""
+    import hashlib
+    import json
+
+    c, mp, g = method.column, method.mobile_phase, method.gradient
+    parts = {
+        **retention_conditions(method),
+        "geometry": [c.length_mm, c.inner_diameter_mm, c.particle_um, c.dead_time_min],
+        "eluents": [mp.a_organic_percent, mp.b_organic_percent],
+        "program": [list(row) for row in g.program],
+        "dwell_volume_ml": method.dwell_volume_ml,
+    }
+    text = json.dumps(parts, sort_keys=True, default=float)
+    return hashlib.sha256(text.encode()).hexdigest()[:16]

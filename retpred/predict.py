@@ -17,7 +17,7 @@ from retpred.calibration import Calibration, SoluteTraits, coverage_warning, fit
 from retpred.chemistry import ionise, log_d
 from retpred.column import column_hsm, dead_time_min, plate_number
 from retpred.gradient import STATUS_OK, ElutionProgram, elute, log_kw_from_rt, program_from_method
-from retpred.method import Method
+from retpred.method import Method, retention_conditions, run_key
 from retpred.model import RetentionModel, Solutes, SystemContext, featurise
 from retpred.peaks import (
     any_coelution_probability,
@@ -28,6 +28,10 @@ from retpred.peaks import (
 )
 
 STATUS_OUTSIDE_DOMAIN = "outside training domain (estimate less certain)"
+#: an analyte that is one of the calibrants, predicted on the calibrants' own method
+STATUS_MEASURED = "measured standard"
+#: the same on another method: retention from its measured log kw, time predicted
+STATUS_FROM_STANDARD = "retention from measured standard"
 
 #: Nominal coverage of the prediction interval [rt_low_min, rt_high_min].
 INTERVAL_COVERAGE = 0.90
@@ -86,12 +90,16 @@ def _quantiles(model: RetentionModel, calibrated: bool,
     return lo, hi
 
 
-def retention(prep: Prepared, solutes: Solutes) -> tuple[np.ndarray, np.ndarray]:
-    """Calibrated ``(log kw, S)`` of a batch on the prepared method."""
+def retention(prep: Prepared, solutes: Solutes) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Calibrated ``(log kw, S)`` of a batch on the prepared method, and which rows are
+    measured standards of the calibration (:meth:`Calibration.measured`)."""
     log_kw, s = prep.model.retention_parameters(solutes, prep.context)
+    measured = np.zeros(len(solutes), dtype=bool)
     if prep.calibration is not None:
-        log_kw = prep.calibration.apply(log_kw, SoluteTraits.of(solutes, model=prep.model))
-    return log_kw, s
+        traits = SoluteTraits.of(solutes, model=prep.model, keys=True)
+        log_kw = prep.calibration.apply(log_kw, traits)
+        measured = prep.calibration.measured(traits)
+    return log_kw, s, measured
 
 
 def predict_solutes(
@@ -99,10 +107,15 @@ def predict_solutes(
 ) -> pd.DataFrame:
     """Per-analyte rows (without the pair columns; see :func:`add_pairs`)."""
     n = len(solutes)
-    log_kw, s = retention(prep, solutes)
+    log_kw, s, measured = retention(prep, solutes)
     el = elute(log_kw, s, prep.program)
     known = prep.model.known(solutes)
     q_lo, q_hi = _quantiles(prep.model, prep.calibration is not None, known)
+    # a measured standard on the very method it was run on: its time is the measurement
+    # (the interval collapses to it; its repeatability is not modelled)
+    own_run = measured & (prep.calibration is not None
+                          and prep.calibration.run_key == run_key(prep.method))
+    q_lo, q_hi = np.where(own_run, 0.0, q_lo), np.where(own_run, 0.0, q_hi)
     # interval: quantiles of held-out errors in elution-composition units (log kw / S)
     rt_lo = elute(log_kw + q_lo * s, s, prep.program).rt_min
     rt_hi = elute(log_kw + q_hi * s, s, prep.program).rt_min
@@ -129,7 +142,11 @@ def predict_solutes(
         else:
             if solutes.batch.status[i] != "ok":
                 parts.append(solutes.batch.status[i])
-            if far[i]:
+            if own_run[i]:
+                parts.append(STATUS_MEASURED)
+            elif measured[i]:
+                parts.append(STATUS_FROM_STANDARD)
+            elif far[i]:
                 parts.append(STATUS_OUTSIDE_DOMAIN)
             if el.status[i] != STATUS_OK:
                 parts.append(str(el.status[i]))
@@ -221,9 +238,10 @@ def calibrate(
 
     cal = fit_calibration(
         log_kw, obs, rt_obs, rt_of, names=list(names), method_summary=method_summary(prep.method),
-        traits=SoluteTraits.of(sol, model=prep.model), upper_log_kw=upper,
+        traits=SoluteTraits.of(sol, model=prep.model, keys=True), upper_log_kw=upper,
     )
-    return replace(cal, model_id=prep.model.identity())
+    return replace(cal, model_id=prep.model.identity(),
+                   conditions=retention_conditions(prep.method), run_key=run_key(prep.method))
 
 
 def predict_frame(

@@ -61,7 +61,7 @@ def elution_table(table: pd.DataFrame, title: str, max_rows: int = 60) -> Table:
             "-" if eo is pd.NA else str(int(eo)),
             str(r["name"]),
             fmt_value(r["rt_min"]),
-            f"{fmt_value(r['rt_low_min'])}-{fmt_value(r['rt_high_min'])}",
+            _interval_text(r),
             fmt_value(r["peak_width_min"], 3),
             fmt_value(r["resolution_next"], 1),
             f"{flag}{fmt_value(risk)}",
@@ -70,6 +70,15 @@ def elution_table(table: pd.DataFrame, title: str, max_rows: int = 60) -> Table:
             str(r["status"])[:60],
         )
     return t
+
+
+def _interval_text(row) -> str:
+    """``low-high``; "measured" where the interval is the time itself (a measured standard
+    on its own method, ``retpred.predict.STATUS_MEASURED``)."""
+    lo, hi, rt = (row["rt_low_min"], row["rt_high_min"], row["rt_min"])
+    if all(isinstance(v, float) and math.isfinite(v) for v in (lo, hi, rt)) and lo == hi == rt:
+        return "measured"
+    return f"{fmt_value(lo)}-{fmt_value(hi)}"
 
 
 def make_console() -> Console:

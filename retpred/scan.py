@@ -332,7 +332,7 @@ def retention_grid(
                                                idx=np.tile(np.arange(n), k))
             grid = lk.reshape(k, n)
     if calibration is not None:
-        grid = calibration.apply(grid, SoluteTraits.of(solutes, model=model))
+        grid = calibration.apply(grid, SoluteTraits.of(solutes, model=model, keys=True))
     log_kw = grid
     return log_kw, s, ion_kn
 

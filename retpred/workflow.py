@@ -105,9 +105,10 @@ def prepared_run(
         prep = dataclasses.replace(prep, calibration=cal)
     elif calibration is not None:
         cal = load_calibration_file(calibration)
-        mismatch = cal.model_mismatch(model.identity())
+        mismatch = [w for w in (cal.model_mismatch(model.identity()),
+                                cal.condition_mismatch(method)) if w]
         if mismatch:
-            cal = dataclasses.replace(cal, warnings=(*cal.warnings, mismatch))
+            cal = dataclasses.replace(cal, warnings=(*cal.warnings, *mismatch))
         prep = dataclasses.replace(prep, calibration=cal)
     return method, model, prep
 
