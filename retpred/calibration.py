@@ -286,6 +286,10 @@ class Calibration:
     #: on (empty in files of format 3 or older)
     conditions: dict = field(default_factory=dict)
     run_key: str = ""
+    #: the calibrants' measured ``log kw`` and their S (format 4), from which their window
+    #: on another program is found (:meth:`on_program`)
+    cal_log_kw: tuple[float, ...] = ()
+    cal_s: tuple[float, ...] = ()
 
     @property
     def kind(self) -> str:
@@ -342,6 +346,20 @@ class Calibration:
             n = 0 if traits is None else len(traits.logp)
             return np.zeros(n, dtype=bool)
         return self._standards(traits.keys)[0]
+
+    def on_program(self, program) -> Calibration:
+        """This calibration with ``cal_rt_range_min`` the calibrants' window on ``program``
+        (a ``retpred.gradient.ElutionProgram``): their measured ``log kw`` eluted on it
+        (LSS). On the calibration's own method that gives back their measured times; a file
+        without them keeps its window."""
+        if not self.cal_log_kw:
+            return self
+        from retpred.gradient import elute
+
+        rt = elute(np.asarray(self.cal_log_kw), np.asarray(self.cal_s), program).rt_min
+        if not np.isfinite(rt).any():
+            return self
+        return replace(self, cal_rt_range_min=(float(np.nanmin(rt)), float(np.nanmax(rt))))
 
     def condition_mismatch(self, method) -> str | None:
         """A warning when ``method``'s pH, temperature, modifier or column differ from those
@@ -415,6 +433,8 @@ class Calibration:
                                          for row in d.get("nb_fingerprints", ()))
             d["standard_keys"] = tuple(str(k) for k in d.get("standard_keys", ()))
             d["standard_offsets"] = tuple(float(v) for v in d.get("standard_offsets", ()))
+            d["cal_log_kw"] = tuple(float(v) for v in d.get("cal_log_kw", ()))
+            d["cal_s"] = tuple(float(v) for v in d.get("cal_s", ()))
             if not isinstance(d.get("conditions", {}), dict):
                 raise ValueError("conditions is not a table")
             cal = cls(**d)
@@ -423,7 +443,8 @@ class Calibration:
         n_fp = len(cal.nb_fingerprints)
         if any(m.nb_residuals and len(m.nb_residuals) != n_fp for m in cal.maps) or not (
                 abs(sum(m.weight for m in cal.maps) - 1.0) < 1e-6) or (
-                len(cal.standard_keys) != len(cal.standard_offsets)):
+                len(cal.standard_keys) != len(cal.standard_offsets)) or (
+                len(cal.cal_log_kw) != len(cal.cal_s)):
             raise InputError("calibration file has inconsistent fields", path=path)
         return cal
 

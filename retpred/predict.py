@@ -240,8 +240,11 @@ def calibrate(
         log_kw, obs, rt_obs, rt_of, names=list(names), method_summary=method_summary(prep.method),
         traits=SoluteTraits.of(sol, model=prep.model, keys=True), upper_log_kw=upper,
     )
+    kept = np.isfinite(obs) & np.isfinite(s)
     return replace(cal, model_id=prep.model.identity(),
-                   conditions=retention_conditions(prep.method), run_key=run_key(prep.method))
+                   conditions=retention_conditions(prep.method), run_key=run_key(prep.method),
+                   cal_log_kw=tuple(float(v) for v in obs[kept]),
+                   cal_s=tuple(float(v) for v in s[kept]))
 
 
 def predict_frame(

@@ -109,7 +109,8 @@ def prepared_run(
                                 cal.condition_mismatch(method)) if w]
         if mismatch:
             cal = dataclasses.replace(cal, warnings=(*cal.warnings, *mismatch))
-        prep = dataclasses.replace(prep, calibration=cal)
+        # the calibrants' window on this method's program, for the coverage warnings
+        prep = dataclasses.replace(prep, calibration=cal.on_program(prep.program))
     return method, model, prep
 
 

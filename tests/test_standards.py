@@ -137,14 +137,17 @@ def test_calibration_file_keeps_standards_and_conditions(calibrated):
     assert back.standard_keys == cal.standard_keys
     assert back.standard_offsets == pytest.approx(cal.standard_offsets)
     assert back.run_key == run_key(prep.method)
+    assert back.cal_log_kw == pytest.approx(cal.cal_log_kw) and len(cal.cal_s) == len(CALIBRANTS)
     assert back.conditions == json.loads(json.dumps(retention_conditions(prep.method)))
     # a format-3 file (before standards and conditions were kept) still reads, without them
     d = json.loads(cal.to_json())
-    for k in ("standard_keys", "standard_offsets", "conditions", "run_key"):
+    for k in ("standard_keys", "standard_offsets", "conditions", "run_key", "cal_log_kw",
+              "cal_s"):
         d.pop(k)
     d["format"] = 3
     old = Calibration.from_json(json.dumps(d))
     assert old.standard_keys == () and old.condition_mismatch(prep.method) is None
+    assert old.on_program(prep.program).cal_rt_range_min == old.cal_rt_range_min
     # keys and offsets of unequal length are refused
     d = json.loads(cal.to_json())
     d["standard_offsets"] = d["standard_offsets"][:-1]
@@ -170,3 +173,27 @@ def test_conditions_that_change_log_kw_are_named(calibrated):
     # within 0.05 pH units (a buffer made up to 0.1; common practice) counts as the same
     near = dataclasses.replace(m, mobile_phase=dataclasses.replace(mp, ph=mp.ph + 0.04))
     assert cal.condition_mismatch(near) is None
+
+
+def test_calibrants_window_follows_the_program(calibrated):
+    prep, measured = calibrated
+    cal = prep.calibration
+    # on its own method the window is the measured times
+    own = cal.on_program(prep.program).cal_rt_range_min
+    assert own == pytest.approx((min(measured.values()), max(measured.values())), abs=1e-4)
+    # on a gradient twice as long the window is where the standards now elute: the times
+    # predict gives them as analytes there
+    m = prep.method
+    g = m.gradient
+    slower = dataclasses.replace(m, gradient=Gradient(
+        flow_ml_min=g.flow_ml_min, dwell_volume_ml=g.dwell_volume_ml,
+        program=tuple((t * 2.0, b, f) for t, b, f in g.program)))
+    other = prepare(slower, prep.model, cal.on_program(prepare(slower, prep.model).program))
+    got = predict_frame(other, list(CALIBRANTS.values()), list(CALIBRANTS))
+    rt = got["rt_min"].to_numpy(float)
+    assert other.calibration.cal_rt_range_min == pytest.approx((rt.min(), rt.max()), abs=1e-4)
+    assert "warnings" not in got.attrs
+    # the window of the calibration's own times would have called most of them outside
+    from retpred.calibration import coverage_warning
+
+    assert coverage_warning(cal, rt) is not None
