@@ -400,6 +400,9 @@ def run_calibrate(calibrants, method_path, *, out, model=None, force=False, quie
                     f"{cal.loo_median_abs_error_min:.3f} min")
         if cal.factor_note():
             c.print(f"  {cal.factor_note()}")
+        if cal.standard_keys:
+            c.print(f"  {len(cal.standard_keys)} standard structure(s) kept: the same structure "
+                    "in an analyte list is predicted at its measured time on this method")
         for w in cal.warnings:
             c.print(f"[yellow]warning:[/] {w}")
         c.print(f"wrote {out}")

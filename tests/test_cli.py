@@ -283,12 +283,19 @@ def test_calibrate_writes_file_used_by_predict(shipped_model, demo_dir, analytes
     out = tmp_path / "sys.cal"
     res = run("calibrate", cal, "-m", demo_dir / "method.toml", "--out", out)
     assert res.exit_code == 0, res.output
+    assert "3 standard structure(s) kept" in res.output
     a, b = tmp_path / "a.csv", tmp_path / "b.csv"
     assert run("predict", analytes, "-m", demo_dir / "method.toml", "--calibration", out,
                "--out", a, "-q").exit_code == 0
     assert run("predict", analytes, "-m", demo_dir / "method.toml", "--calibrants", cal,
                "--out", b, "-q").exit_code == 0
     assert a.read_bytes() == b.read_bytes()
+    # caffeine and toluene are standards too: their measured times come back
+    got = pd.read_csv(a).set_index("name")
+    for name, rt in (("caffeine", 1.9), ("toluene", 7.1)):
+        assert got.loc[name, "rt_min"] == pytest.approx(rt, abs=1e-3)
+        assert got.loc[name, "status"] == "measured standard"
+    assert got.loc["ibuprofen", "status"] != "measured standard"
 
 
 def test_scan_with_calibrants_matches_calibrated_predict(shipped_model, demo_dir, analytes,
