@@ -33,6 +33,7 @@ ALLOWED_TYPES = (
     "sklearn.ensemble._hist_gradient_boosting.gradient_boosting.HistGradientBoostingRegressor",
     "sklearn.linear_model._ridge.Ridge",
     "sklearn._loss.loss.HalfSquaredError",
+    "sklearn._loss.loss.AbsoluteError",
     "sklearn._loss.link.IdentityLink",
     "sklearn._loss.link.Interval",
     "numpy.random._generator.Generator",
