@@ -136,10 +136,9 @@ class SoluteTraits:
         factors = model.factor_matrix(solutes, idx) if model is not None else None
         key_arr = None
         if keys:
-            all_keys = np.array([k if u else "" for k, u in
-                                 zip(solutes.memory_keys, solutes.usable, strict=True)],
-                                dtype=object)
-            key_arr = all_keys[idx] if all_keys.size else np.array([], dtype=object)
+            key_arr = np.array([k if u else "" for k, u in
+                                zip(solutes.memory_keys, solutes.usable, strict=True)],
+                               dtype=object)[idx]
         return cls(logp=d[:, DESCRIPTOR_NAMES.index("logp")],
                    tpsa_a2=d[:, DESCRIPTOR_NAMES.index("tpsa")],
                    fingerprints=solutes.fingerprints[idx], factors=factors, keys=key_arr)

@@ -630,10 +630,7 @@ def conditions_differ(fitted: Mapping[str, Any], method: Method) -> list[str]:
         if key in tol and old is not None and value is not None:
             if abs(float(old) - float(value)) > tol[key]:
                 out.append(key)
-        elif key == "hsm" and old is not None and value is not None:
-            if any(abs(float(a) - float(b)) > 1e-9 for a, b in zip(old, value, strict=True)):
-                out.append(key)
-        elif old != value:
+        elif old != value:  # phase, modifier, HSM parameters (a JSON round trip is exact)
             out.append(key)
     return out
 

@@ -173,6 +173,15 @@ def test_conditions_that_change_log_kw_are_named(calibrated):
     # within 0.05 pH units (a buffer made up to 0.1; common practice) counts as the same
     near = dataclasses.replace(m, mobile_phase=dataclasses.replace(mp, ph=mp.ph + 0.04))
     assert cal.condition_mismatch(near) is None
+    # a column given by its own HSM parameters is another column than the class median;
+    # the same parameters read back from a file are the same column
+    from retpred.column import column_hsm
+
+    own = dataclasses.replace(m, column=dataclasses.replace(
+        m.column, hsm=dataclasses.replace(column_hsm(m.column), H=1.1)))
+    assert conditions_differ(cal.conditions, own) == ["hsm"]
+    fitted = json.loads(json.dumps(retention_conditions(own)))
+    assert conditions_differ(fitted, own) == []
 
 
 def test_calibrants_window_follows_the_program(calibrated):
