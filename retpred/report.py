@@ -12,6 +12,7 @@ from rich.table import Table
 
 from retpred.io import atomic_output, atomic_output_path, write_csv_rows
 from retpred.peaks import simulate_chromatogram
+from retpred.predict import STATUS_MEASURED
 
 CAUTION = (
     "Predicted times are estimates: confirm them by injecting standards. Stay within the "
@@ -73,12 +74,11 @@ def elution_table(table: pd.DataFrame, title: str, max_rows: int = 60) -> Table:
 
 
 def _interval_text(row) -> str:
-    """``low-high``; "measured" where the interval is the time itself (a measured standard
-    on its own method, ``retpred.predict.STATUS_MEASURED``)."""
-    lo, hi, rt = (row["rt_low_min"], row["rt_high_min"], row["rt_min"])
-    if all(isinstance(v, float) and math.isfinite(v) for v in (lo, hi, rt)) and lo == hi == rt:
+    """``low-high``; "measured" for a measured standard on its own method, whose interval
+    is its measured time."""
+    if STATUS_MEASURED in str(row["status"]).split("; "):
         return "measured"
-    return f"{fmt_value(lo)}-{fmt_value(hi)}"
+    return f"{fmt_value(row['rt_low_min'])}-{fmt_value(row['rt_high_min'])}"
 
 
 def make_console() -> Console:

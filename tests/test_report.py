@@ -76,3 +76,14 @@ def test_comparison_figure_draws_the_outlet_composition_of_each_method():
         on = x > delay
         np.testing.assert_allclose(y[on], 10.0 + 8.0 * (x[on] - delay), atol=1e-9)
         assert np.allclose(y[~on], 10.0)
+
+
+def test_a_measured_standard_shows_measured_in_place_of_an_interval():
+    t = _table()
+    t.loc[2, ["rt_low_min", "rt_high_min", "status"]] = [3.0, 3.0, "measured standard"]
+    console = Console(record=True, width=200)
+    print_report(t, "test", [], console)
+    rows = {x.split("│")[2].strip(): x for x in console.export_text().splitlines()
+            if x.count("│") > 5}
+    assert "measured" in rows["c"] and "3.00-3.00" not in rows["c"]
+    assert "0.80-1.20" in rows["a"]
