@@ -29,7 +29,7 @@ from retpred.calibration import neighbour_correction
 from retpred.errors import InputError
 from retpred.gradient import elute, log_kw_from_rt
 from retpred.io import atomic_output_path, read_training_data
-from retpred.method import load_method, method_summary
+from retpred.method import load_method, method_summary, run_key
 from retpred.model import (
     FINGERPRINT_COLUMNS,
     data_fingerprint,
@@ -51,11 +51,32 @@ LAB_PH_TOLERANCE = 0.3
 LAB_TEMPERATURE_TOLERANCE_C = 5.0
 
 
-def system_record(context, summary: str) -> dict:
-    """What a lab model keeps of a training method's system (for :func:`lab_domain_note`)."""
+def system_record(context, summary: str, key_of_run: str = "") -> dict:
+    """What a lab model keeps of a training method's system (for :func:`lab_domain_note`
+    and the lab standards' matching, :meth:`RetentionModel.lab_standard_offsets`)."""
     return {"organic": context.organic, "ph": float(context.ph),
             "temperature_c": float(context.temperature_c),
-            "hsm": [float(v) for v in dataclasses.astuple(context.hsm)], "summary": summary}
+            "hsm": [float(v) for v in dataclasses.astuple(context.hsm)], "summary": summary,
+            "run_key": key_of_run}
+
+
+def lab_standards(keys: Sequence[str], system: np.ndarray, obs_lk: np.ndarray,
+                  fitted_lk: np.ndarray) -> dict | None:
+    """The lab's measured compounds as standards: per structure key and lab system, the
+    mean of ``obs_lk - fitted_lk`` over its retained rows (replicates averaged in
+    ``log kw``), so that the lab model gives a compound it was trained on its measured
+    retention back, as a calibration does its standards (DEVELOPERS.md, "Measured
+    standards"). Rows without a ``log kw`` (at or before the dead time) or a key are left
+    out. None when no row qualifies."""
+    groups: dict[tuple[str, int], list[float]] = {}
+    for k, j, o, f in zip(keys, system, obs_lk, fitted_lk, strict=True):
+        if k and np.isfinite(o) and np.isfinite(f):
+            groups.setdefault((str(k), int(j)), []).append(float(o - f))
+    if not groups:
+        return None
+    items = sorted(groups.items())
+    return {"keys": [k for (k, _), _ in items], "systems": [j for (_, j), _ in items],
+            "offsets": [float(np.mean(v)) for _, v in items]}
 
 
 def _differences(rec: dict, context) -> list[str]:
@@ -248,7 +269,10 @@ def train_lab_model(
 
     best, metrics, lin, gbm = select_correction(b, o, x, rt[idx], rt_of,
                                                 upper_lk=upper_lk[idx])
+    keys = np.asarray(sol.memory_keys, dtype=object)[idx]
+    standards = lab_standards(keys, which[idx], o, _apply(lin, gbm, b, x))
     lab = copy.copy(base)
+    lab.lab_standards_ = standards
     lab.lab_neighbours_ = lin.pop("neighbours", None)
     lab.lab_linear_ = lin
     lab.lab_gbm_ = gbm
@@ -257,7 +281,9 @@ def train_lab_model(
         "lab_trained": now_utc(),
         "lab_training_files": [str(p) for p in data],
         "lab_training_sha256": data_fingerprint(*(Path(p).read_bytes() for p in data)),
-        "lab_systems": [system_record(p.context, method_summary(p.method)) for p in preps],
+        "lab_systems": [system_record(p.context, method_summary(p.method), run_key(p.method))
+                        for p in preps],
+        "lab_n_standards": 0 if standards is None else len(standards["keys"]),
         "lab_n_compounds": n_ok,
         "lab_n_unretained": int(np.isnan(o).sum()),
         "lab_n_near_t0": int(np.isfinite(upper_lk[idx]).sum()),
@@ -278,5 +304,8 @@ def train_lab_model(
                 "5-fold cross-validated median |error| in minutes:")
         for k, v in metrics.items():
             c.print(f"  {k:<20} {v:.3f}")
+        if standards:
+            c.print(f"{len(standards['keys'])} compound(s) kept as measured standards: on "
+                    "their own method the model gives their measured times back")
         c.print(f"wrote {out}")
     return metrics

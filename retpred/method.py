@@ -600,6 +600,12 @@ def method_summary(method: Method) -> str:
             f"{mp.organic}, {ph}, {temp}; {flow}; {program}")
 
 
+#: Retention conditions count as the same within these (our choice: well inside what a
+#: buffer preparation or a column oven holds).
+SAME_PH_TOLERANCE = 0.05
+SAME_TEMPERATURE_TOLERANCE_C = 0.5
+
+
 def retention_conditions(method: Method) -> dict[str, Any]:
     """What fixes a solute's ``log kw`` on a method (LSS, retention-physics.md section 2):
     the stationary phase (its class, and its HSM parameters when given), the organic
@@ -621,7 +627,7 @@ def conditions_differ(fitted: Mapping[str, Any], method: Method) -> list[str]:
     (pH and temperature within 0.05 units and 0.5 C count as equal); keys ``fitted`` lacks
     are not compared."""
     now = retention_conditions(method)
-    tol = {"ph": 0.05, "temperature_c": 0.5}
+    tol = {"ph": SAME_PH_TOLERANCE, "temperature_c": SAME_TEMPERATURE_TOLERANCE_C}
     out = []
     for key, value in now.items():
         if key not in fitted:

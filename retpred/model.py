@@ -41,7 +41,7 @@ from __future__ import annotations
 import hashlib
 import json
 from collections.abc import Sequence
-from dataclasses import dataclass, field
+from dataclasses import astuple, dataclass, field
 from datetime import UTC, datetime
 from functools import cached_property, lru_cache
 
@@ -61,7 +61,11 @@ from retpred.chemistry import (
     find_ionisable_sites,
     ionise,
 )
-from retpred.method import HsmParameters
+from retpred.method import (
+    SAME_PH_TOLERANCE,
+    SAME_TEMPERATURE_TOLERANCE_C,
+    HsmParameters,
+)
 from retpred.structures import StandardisedBatch, standardise_mols, standardise_smiles
 
 #: Model-file format version; a file of another format is refused.
@@ -168,6 +172,18 @@ class SystemContext:
     ph: float
     temperature_c: float
     hsm: HsmParameters
+
+
+def same_conditions(record: dict, ctx: SystemContext) -> bool:
+    """Whether a recorded system (``organic``, ``ph``, ``temperature_c``, ``hsm`` as in
+    :func:`retpred.lab.system_record`) has ``ctx``'s retention conditions: the same
+    modifier and column parameters, pH and temperature within the tolerances of
+    :func:`retpred.method.conditions_differ`."""
+    return (record["organic"] == ctx.organic
+            and np.allclose(record["hsm"], astuple(ctx.hsm), rtol=1e-6, atol=1e-9)
+            and abs(record["ph"] - ctx.ph) <= SAME_PH_TOLERANCE
+            and abs(record["temperature_c"] - ctx.temperature_c)
+            <= SAME_TEMPERATURE_TOLERANCE_C)
 
 
 def s_parameter(mw: np.ndarray) -> np.ndarray:
@@ -406,6 +422,11 @@ class RetentionModel:
     #: lab neighbour correction: {"fingerprints": [[...]], "residuals": [...]} of the lab's
     #: compounds after the linear map (``retpred.calibration.neighbour_correction``) or None
     lab_neighbours_: dict | None = None
+    #: the lab's measured compounds (:func:`retpred.lab.lab_standards`): {"keys": [...],
+    #: "systems": [index into ``meta_["lab_systems"]``, ...], "offsets": [log kw, ...]},
+    #: each offset the mean residual of a structure's retained rows on one lab system after
+    #: the lab correction; or None
+    lab_standards_: dict | None = None
     #: compound memory {structure key: log kw offset} (see :func:`fit_compound_memory`)
     memory_: dict = field(default_factory=dict)
     #: compound factors {structure key: [v_1, ..., v_k]} (see :func:`fit_compound_factors`)
@@ -452,6 +473,9 @@ class RetentionModel:
                     + self.memory_offsets(solutes, idx[ok]))
             if self.lab_linear_ is not None:
                 pred = self.apply_lab(pred, x[ok])
+            if self.lab_standards_:
+                pred = pred + np.nan_to_num(self.lab_standard_offsets(
+                    solutes, idx[ok], contexts, which[ok]))
             log_kw[ok] = pred
         s = np.where(ok, s, np.nan)
         return log_kw, s
@@ -563,6 +587,45 @@ class RetentionModel:
                                              np.asarray(nb["residuals"], dtype=float))
         return out
 
+    def lab_standard_offsets(self, solutes: Solutes, idx: np.ndarray,
+                             contexts: Sequence[SystemContext],
+                             which: np.ndarray) -> np.ndarray:
+        """``log kw`` offsets of rows ``idx`` that are lab standards (NaN elsewhere): a
+        structure's mean offset over the lab systems with the row's retention conditions
+        (:func:`same_conditions`), else over all the lab systems it was measured on (the
+        lab correction is carried to other conditions too, with a note)."""
+        std = self.lab_standards_ or {}
+        systems = (self.meta_ or {}).get("lab_systems") or []
+        table: dict[str, list[tuple[int, float]]] = {}
+        for key, j, off in zip(std.get("keys", ()), std.get("systems", ()),
+                               std.get("offsets", ()), strict=True):
+            table.setdefault(key, []).append((int(j), float(off)))
+        match = [{j for j, rec in enumerate(systems) if same_conditions(rec, c)}
+                 for c in contexts]
+        out = np.full(len(idx), np.nan)
+        for r, (i, w) in enumerate(zip(idx, which, strict=True)):
+            got = table.get(solutes.memory_keys[i]) if solutes.usable[i] else None
+            if got:
+                own = [off for j, off in got if j in match[w]]
+                out[r] = float(np.mean(own or [off for _, off in got]))
+        return out
+
+    def lab_standard_runs(self, solutes: Solutes, key_of_run: str) -> tuple[np.ndarray,
+                                                                              np.ndarray]:
+        """Which rows are lab standards, and which of them were measured on the run whose
+        :func:`retpred.method.run_key` is ``key_of_run`` (their predicted time is then the
+        measured one)."""
+        std = self.lab_standards_ or {}
+        systems = (self.meta_ or {}).get("lab_systems") or []
+        own_systems = {j for j, rec in enumerate(systems) if rec.get("run_key") == key_of_run}
+        keys = set(std.get("keys", ()))
+        own_keys = {k for k, j in zip(std.get("keys", ()), std.get("systems", ()), strict=True)
+                    if int(j) in own_systems}
+        pairs = [(bool(u) and k in keys, bool(u) and k in own_keys)
+                 for u, k in zip(solutes.usable, solutes.memory_keys, strict=True)]
+        arr = np.array(pairs, dtype=bool).reshape(-1, 2)
+        return arr[:, 0], arr[:, 1]
+
     def fixed_terms(self, arr: dict, ion: Ionisation) -> np.ndarray:
         """Terms of ``log kw`` that are not learned: column retentivity and ionisation."""
         return np.log10(arr["kEB"] / self.reference.kEB) + ion_term(
@@ -624,7 +687,7 @@ class RetentionModel:
         ).fit(x, resid, sample_weight=sample_weight)
         self.ridge_ = ridge
         self.gbm_ = gbm
-        self.lab_linear_ = self.lab_gbm_ = self.lab_neighbours_ = None
+        self.lab_linear_ = self.lab_gbm_ = self.lab_neighbours_ = self.lab_standards_ = None
         self.companion_ridge_ = self.companion_gbm_ = None
         self.companion_memory_, self.companion_skeleton_memory_ = {}, {}
         self.memory_, self.factors_ = {}, {}

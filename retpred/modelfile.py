@@ -46,7 +46,7 @@ _STATE_FIELDS = (
     "ion_drop_acid", "ion_drop_base", "ion_drop_pair", "gbm_max_iter", "gbm_learning_rate",
     "ridge_alpha", "random_state", "residual_quantiles_", "residual_sd_", "metrics_", "meta_",
     "lab_linear_", "domain_", "lab_neighbours_", "memory_", "factors_", "skeleton_memory_",
-    "skeleton_factors_", "companion_memory_", "companion_skeleton_memory_",
+    "skeleton_factors_", "companion_memory_", "companion_skeleton_memory_", "lab_standards_",
 )
 
 

@@ -90,16 +90,23 @@ def _quantiles(model: RetentionModel, calibrated: bool,
     return lo, hi
 
 
-def retention(prep: Prepared, solutes: Solutes) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """Calibrated ``(log kw, S)`` of a batch on the prepared method, and which rows are
-    measured standards of the calibration (:meth:`Calibration.measured`)."""
+def retention(prep: Prepared, solutes: Solutes) -> tuple[np.ndarray, np.ndarray, np.ndarray,
+                                                         np.ndarray]:
+    """Calibrated ``(log kw, S)`` of a batch on the prepared method; which rows are measured
+    standards (of the calibration, :meth:`Calibration.measured`, or of a lab model,
+    :meth:`RetentionModel.lab_standard_runs`); and which of those were measured on this
+    very run (their time is then the measurement itself)."""
     log_kw, s = prep.model.retention_parameters(solutes, prep.context)
-    measured = np.zeros(len(solutes), dtype=bool)
+    this_run = run_key(prep.method)
+    measured, own_run = prep.model.lab_standard_runs(solutes, this_run)
     if prep.calibration is not None:
         traits = SoluteTraits.of(solutes, model=prep.model, keys=True)
         log_kw = prep.calibration.apply(log_kw, traits)
-        measured = prep.calibration.measured(traits)
-    return log_kw, s, measured
+        cal_std = prep.calibration.measured(traits)
+        # the calibration's map moves a lab standard that is not one of its own standards
+        own_run = cal_std if prep.calibration.run_key == this_run else np.zeros_like(cal_std)
+        measured = measured | cal_std
+    return log_kw, s, measured, own_run
 
 
 def predict_solutes(
@@ -107,14 +114,12 @@ def predict_solutes(
 ) -> pd.DataFrame:
     """Per-analyte rows (without the pair columns; see :func:`add_pairs`)."""
     n = len(solutes)
-    log_kw, s, measured = retention(prep, solutes)
+    log_kw, s, measured, own_run = retention(prep, solutes)
     el = elute(log_kw, s, prep.program)
     known = prep.model.known(solutes)
     q_lo, q_hi = _quantiles(prep.model, prep.calibration is not None, known)
     # a measured standard on the very method it was run on: its time is the measurement
     # (the interval collapses to it; its repeatability is not modelled)
-    own_run = measured & (prep.calibration is not None
-                          and prep.calibration.run_key == run_key(prep.method))
     q_lo, q_hi = np.where(own_run, 0.0, q_lo), np.where(own_run, 0.0, q_hi)
     # interval: quantiles of held-out errors in elution-composition units (log kw / S)
     rt_lo = elute(log_kw + q_lo * s, s, prep.program).rt_min

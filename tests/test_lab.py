@@ -32,17 +32,29 @@ def lab_case(open_data, open_systems, small_model, small_training_set, tmp_path_
     system = next(s for s in open_systems if s.dataset not in seen and s.phase == "C18"
                   and s.organic == "acetonitrile" and 120 <= len(
                       load_compounds(open_data, {s.dataset})) <= 1500)
-    rows = load_compounds(open_data, {system.dataset}).sample(frac=1.0, random_state=0)
-    half = len(rows) // 2
+    train, test = _halves(load_compounds(open_data, {system.dataset}))
     d = tmp_path_factory.mktemp("lab")
     method = d / "method.toml"
     write_system_method(system, method)
-    train, test = rows.iloc[:half], rows.iloc[half:]
     train[["name", "smiles", "rt_min"]].to_csv(d / "inhouse.csv", index=False)
     base = d / "base.skops"
     save_model(small_model, base)
     return {"dir": d, "method": method, "train": train, "test": test, "base": base,
             "dataset": system.dataset}
+
+
+def _halves(rows: pd.DataFrame) -> tuple[pd.DataFrame, pd.DataFrame]:
+    """A random half of a system's structures (by compound-memory key, so that replicate
+    rows and stereoisomers drawn alike stay together) and the rest: no held-out compound
+    is one of the lab model's measured standards."""
+    from retpred.model import featurise
+
+    rows = rows.sample(frac=1.0, random_state=0).reset_index(drop=True)
+    keys = pd.Series(featurise(rows["smiles"].tolist()).memory_keys)
+    first = keys.drop_duplicates()
+    train_keys = set(first.iloc[: len(first) // 2])
+    in_train = keys.isin(train_keys).to_numpy()
+    return rows[in_train], rows[~in_train]
 
 
 def _medae(model, method_path, rows):
@@ -54,11 +66,9 @@ def _medae(model, method_path, rows):
 def _lab_ratio(open_data, system, base, d):
     from retpred.opendata import load_compounds
 
-    rows = load_compounds(open_data, {system.dataset}).sample(frac=1.0, random_state=0)
-    half = len(rows) // 2
+    train, test = _halves(load_compounds(open_data, {system.dataset}))
     method = d / f"{system.dataset}.toml"
     write_system_method(system, method)
-    train, test = rows.iloc[:half], rows.iloc[half:]
     data = d / f"{system.dataset}.csv"
     train[["name", "smiles", "rt_min"]].to_csv(data, index=False)
     out = d / f"{system.dataset}.skops"
@@ -159,3 +169,66 @@ def test_predicting_off_the_lab_conditions_is_noted(lab_case, tmp_path):
     assert res.exit_code == 0, res.output
     line = " ".join(res.output.split()).split("trained on other conditions than those of ")[1]
     assert line.startswith("meoh.toml:")
+
+
+def _program_scaled(text: str, factor: float) -> str:
+    """The method text with every time of its pump program multiplied by ``factor``."""
+    head, prog = text.split("program = ")
+    rows = [[float(v) for v in r.split(",")] for r in re.findall(r"\[([^\[\]]+)\]", prog)]
+    body = ", ".join(f"[{r[0] * factor:.6g}, " + ", ".join(f"{v:.6g}" for v in r[1:]) + "]"
+                     for r in rows)
+    return f"{head}program = [{body}]\n"
+
+
+def test_training_compounds_are_measured_standards(lab_case, tmp_path):
+    """The outside truth is the lab's own measurements: a compound the lab model was
+    trained on comes back at its measured time on its method (status 'measured standard',
+    zero-width interval); on a gradient twice as long its measured retention is carried
+    (the time is ``elute(log_kw_from_rt(t_obs))`` on the new program); held-out compounds
+    are untouched by the standards."""
+    from retpred.gradient import elute, log_kw_from_rt
+    from retpred.model import featurise
+
+    out = tmp_path / "lab.skops"
+    train_lab_model([lab_case["dir"] / "inhouse.csv"], [lab_case["method"]], out=out,
+                    base_model=lab_case["base"], quiet=True)
+    lab = load_model(out)
+    assert lab.meta_["lab_n_standards"] > 0
+    train = lab_case["train"]
+    keys = pd.Series(featurise(train["smiles"].tolist()).memory_keys)
+    single = ~keys.duplicated(keep=False).to_numpy()  # replicates are averaged
+    prep = prepare(load_method(lab_case["method"]), lab)
+    t = predict_frame(prep, train["smiles"].tolist(), with_pairs=False)
+    obs = train["rt_min"].to_numpy()
+    retained = obs > 1.2 * prep.t0_min  # at or near t0 a time fixes no retention
+    std = t["status"].str.contains("measured standard").to_numpy()
+    assert (retained & single).sum() >= 40
+    assert std[retained].all()
+    pick = retained & single
+    np.testing.assert_allclose(t["rt_min"].to_numpy()[pick], obs[pick], atol=2e-3)
+    np.testing.assert_allclose(t["rt_low_min"].to_numpy()[pick], obs[pick], atol=2e-3)
+    # without the standards the same model is far from some of them (the motivating case)
+    bare = load_model(out)
+    bare.lab_standards_ = None
+    t_bare = predict_frame(prepare(load_method(lab_case["method"]), bare),
+                           train["smiles"].tolist(), with_pairs=False)
+    assert np.nanmax(np.abs(t_bare["rt_min"].to_numpy()[pick] - obs[pick])) > 0.05
+    # held-out compounds: no standard, the same prediction as without the standards
+    test = lab_case["test"]["smiles"].tolist()
+    t_test = predict_frame(prep, test, with_pairs=False)
+    t_test_bare = predict_frame(prepare(load_method(lab_case["method"]), bare), test,
+                                with_pairs=False)
+    assert not t_test["status"].str.contains("standard").any()
+    np.testing.assert_allclose(t_test["rt_min"], t_test_bare["rt_min"], rtol=0, atol=1e-9)
+    # a gradient twice as long: the measured log kw carried to the new program
+    long = tmp_path / "long.toml"
+    long.write_text(_program_scaled(lab_case["method"].read_text(encoding="utf-8"), 2.0),
+                    encoding="utf-8")
+    prep_long = prepare(load_method(long), lab)
+    t_long = predict_frame(prep_long, train["smiles"].tolist(), with_pairs=False)
+    sol = featurise(train["smiles"].tolist())
+    s = lab.retention_parameters(sol, prep.context)[1]
+    expected = elute(log_kw_from_rt(obs, s, prep.program), s, prep_long.program).rt_min
+    np.testing.assert_allclose(t_long["rt_min"].to_numpy()[pick], expected[pick], atol=2e-3)
+    assert (t_long["status"].to_numpy()[pick] == "retention from measured standard").any()
+    assert not t_long["status"].str.fullmatch("measured standard").any()

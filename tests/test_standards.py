@@ -206,3 +206,40 @@ def test_calibrants_window_follows_the_program(calibrated):
     from retpred.calibration import coverage_warning
 
     assert coverage_warning(cal, rt) is not None
+
+
+def test_lab_standard_offsets_follow_the_conditions():
+    """The rule for a compound a lab measured under two conditions (our choice,
+    DEVELOPERS.md "Measured standards"): under one of them its offset is that system's;
+    under neither, the mean of the two. Offsets and records are invented."""
+    from retpred.column import class_hsm
+    from retpred.model import RetentionModel, SystemContext
+
+    hsm = class_hsm("C18")
+    model = RetentionModel(reference=hsm)
+
+    def record(ph):
+        return {"organic": "acetonitrile", "ph": ph, "temperature_c": 30.0,
+                "hsm": list(dataclasses.astuple(hsm)), "summary": "", "run_key": f"r{ph}"}
+
+    model.meta_ = {"lab_systems": [record(3.0), record(7.0)]}
+    sol = featurise([CALIBRANTS["phenol"], CALIBRANTS["toluene"], CALIBRANTS["caffeine"]])
+    keys = sol.memory_keys
+    model.lab_standards_ = {"keys": [keys[0], keys[0], keys[1]], "systems": [0, 1, 1],
+                            "offsets": [0.2, -0.4, 0.1]}
+
+    def ctx(ph):
+        return SystemContext(organic="acetonitrile", ph=ph, temperature_c=30.0, hsm=hsm)
+
+    got = model.lab_standard_offsets(sol, np.arange(3), [ctx(3.0), ctx(7.02), ctx(5.0)],
+                                     np.array([0, 1, 2]))
+    assert got[0] == pytest.approx(0.2)  # phenol at pH 3: the pH-3 system's
+    assert got[1] == pytest.approx(0.1)  # toluene at pH 7.02 (within 0.05): its own
+    assert np.isnan(got[2])  # caffeine was never measured
+    mixed = model.lab_standard_offsets(sol, np.arange(2), [ctx(5.0)], np.zeros(2, dtype=int))
+    assert mixed[0] == pytest.approx(-0.1)  # neither pH: the mean of 0.2 and -0.4
+    assert mixed[1] == pytest.approx(0.1)  # only one system: that one
+    measured, own = model.lab_standard_runs(sol, "r7.0")
+    assert measured.tolist() == [True, True, False] and own.tolist() == [True, True, False]
+    measured, own = model.lab_standard_runs(sol, "r3.0")
+    assert own.tolist() == [True, False, False]
