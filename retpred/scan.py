@@ -359,6 +359,8 @@ def _fast_grid(model: RetentionModel, solutes: Solutes, contexts: list[SystemCon
             + np.tile(model.memory_offsets(solutes, okidx), k))
     if model.lab_linear_ is not None:
         pred = model.apply_lab(pred, solute_matrix(solutes, idx, arr["meoh"]))
+    if model.lab_standards_:
+        pred = pred + np.nan_to_num(model.lab_standard_offsets(solutes, idx, contexts, which))
     out = np.full((k, len(solutes)), np.nan)
     out[:, okidx] = pred.reshape(k, m)
     return out

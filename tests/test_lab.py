@@ -6,6 +6,7 @@ was not trained on: half its compounds train the lab model, the other half score
 
 from __future__ import annotations
 
+import dataclasses
 import re
 
 import numpy as np
@@ -232,3 +233,13 @@ def test_training_compounds_are_measured_standards(lab_case, tmp_path):
     np.testing.assert_allclose(t_long["rt_min"].to_numpy()[pick], expected[pick], atol=2e-3)
     assert (t_long["status"].to_numpy()[pick] == "retention from measured standard").any()
     assert not t_long["status"].str.fullmatch("measured standard").any()
+    # the scans' fast path gives the lab standards' offsets at and off the lab's pH
+    from retpred.scan import _fast_grid
+
+    contexts = [dataclasses.replace(prep.context, ph=prep.context.ph + d)
+                for d in (-1.0, 0.0, 1.0)]
+    ok = np.flatnonzero(sol.usable)
+    grid = _fast_grid(lab, sol, contexts, ok)
+    for r, c in enumerate(contexts):
+        np.testing.assert_allclose(grid[r, ok], lab.retention_parameters(sol, c)[0][ok],
+                                   rtol=0, atol=1e-9)
