@@ -35,6 +35,7 @@ from retpred.model import (
     data_fingerprint,
     featurise,
     now_utc,
+    same_column,
     solute_matrix,
 )
 from retpred.modelfile import default_model_path, load_model, save_model, sha256_file
@@ -83,7 +84,7 @@ def _differences(rec: dict, context) -> list[str]:
     out = []
     if rec["organic"] != context.organic:
         out.append(f"organic modifier ({context.organic}, trained with {rec['organic']})")
-    if not np.allclose(rec["hsm"], dataclasses.astuple(context.hsm), rtol=1e-6, atol=1e-9):
+    if not same_column(rec, context):
         out.append("column (other HSM parameters or phase class)")
     if abs(rec["ph"] - context.ph) > LAB_PH_TOLERANCE:
         out.append(f"pH ({context.ph:g}, trained at {rec['ph']:g})")

@@ -174,13 +174,19 @@ class SystemContext:
     hsm: HsmParameters
 
 
+def same_column(record: dict, ctx: SystemContext) -> bool:
+    """Whether a recorded system's HSM parameters (``hsm``, as in
+    :func:`retpred.lab.system_record`) are ``ctx``'s (a JSON round trip aside)."""
+    return bool(np.allclose(record["hsm"], astuple(ctx.hsm), rtol=1e-6, atol=1e-9))
+
+
 def same_conditions(record: dict, ctx: SystemContext) -> bool:
     """Whether a recorded system (``organic``, ``ph``, ``temperature_c``, ``hsm`` as in
     :func:`retpred.lab.system_record`) has ``ctx``'s retention conditions: the same
     modifier and column parameters, pH and temperature within the tolerances of
     :func:`retpred.method.conditions_differ`."""
     return (record["organic"] == ctx.organic
-            and np.allclose(record["hsm"], astuple(ctx.hsm), rtol=1e-6, atol=1e-9)
+            and same_column(record, ctx)
             and abs(record["ph"] - ctx.ph) <= SAME_PH_TOLERANCE
             and abs(record["temperature_c"] - ctx.temperature_c)
             <= SAME_TEMPERATURE_TOLERANCE_C)
