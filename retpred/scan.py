@@ -610,14 +610,9 @@ def _check_names(solutes: Solutes, names: Sequence[str]) -> list[str]:
     return names
 
 
-def _ph_scans(method: Method, model: RetentionModel, solutes: Solutes, names,
-              ph_values, columns: Mapping[str, Column], rs_target: float,
-              calibration: Calibration | None, coverage: bool = True) -> dict[str, ScanResult]:
-    """pH scans of several columns (same geometry and program) with one batched model call
-    (``coverage``: warn where analytes leave the calibrants' time window)."""
-    names = _check_names(solutes, names)
-    prog_t0 = _t0(method)
-    pressure = pressure_report(method)
+def _ph_contexts(method: Method, ph_values, columns: Mapping[str, Column]):
+    """(splits {label: _split_ph}, contexts, owning label per context) of pH scans on
+    ``columns``; they depend on the method's modifier and temperature, not its program."""
     splits = {lab: _split_ph(col, ph_values) for lab, col in columns.items()}
     contexts, owner = [], []
     for lab, col in columns.items():
@@ -626,7 +621,24 @@ def _ph_scans(method: Method, model: RetentionModel, solutes: Solutes, names,
             contexts.append(SystemContext(organic=method.mobile_phase.organic, ph=float(ph),
                                           temperature_c=method.temperature_c, hsm=hsm))
             owner.append(lab)
-    log_kw, s, ion = retention_grid(model, solutes, contexts, calibration)
+    return splits, contexts, owner
+
+
+def _ph_scans(method: Method, model: RetentionModel, solutes: Solutes, names,
+              ph_values, columns: Mapping[str, Column], rs_target: float,
+              calibration: Calibration | None, coverage: bool = True,
+              grid=None) -> dict[str, ScanResult]:
+    """pH scans of several columns (same geometry and program) with one batched model call
+    (``coverage``: warn where analytes leave the calibrants' time window). ``grid``: the
+    :func:`retention_grid` of these contexts already computed (the pH x ramp map computes
+    it once for all its ramps, whose programs differ and whose contexts do not)."""
+    names = _check_names(solutes, names)
+    prog_t0 = _t0(method)
+    pressure = pressure_report(method)
+    splits, contexts, owner = _ph_contexts(method, ph_values, columns)
+    if grid is None:
+        grid = retention_grid(model, solutes, contexts, calibration)
+    log_kw, s, ion = grid
     owner_a = np.array(owner, dtype=object)
     prog = program_from_method(method, dead_time_min=prog_t0)
     base_warn = list(method.warnings) + _unusable_warning(solutes, names)
@@ -684,10 +696,15 @@ def ph_scan(
     ``column.ph_min``-``ph_max`` are skipped with a warning. With a ``calibration`` (and
     ``coverage``) a warning names the points where analytes leave the calibrants' window.
     """
-    label = method.column.phase if method.column.hsm is None else \
-        f"{method.column.phase} (own HSM parameters)"
+    label = _own_label(method)
     return _ph_scans(method, model, solutes, names, ph_values, {label: method.column},
                      rs_target, calibration, coverage)[label]
+
+
+def _own_label(method: Method) -> str:
+    """Label of the method's own column in a pH scan."""
+    return method.column.phase if method.column.hsm is None else \
+        f"{method.column.phase} (own HSM parameters)"
 
 
 def gradient_time_scan(
@@ -885,14 +902,21 @@ def ph_gradient_scan(
     tg = np.unique(np.asarray(ramp_times_min, dtype=float).ravel())
     if tg.size == 0 or not np.all(np.isfinite(tg)) or np.any(tg <= 0):
         raise InputError("gradient times must be finite and > 0 min", field="--gradient-time")
-    scans = [ph_scan(stretch_ramp(method, float(ramp)), model, solutes, names, ph_values,
-                     rs_target, calibration, coverage=False) for ramp in tg]
+    own_col = {_own_label(method): method.column}
+    # retention depends on pH, column, modifier and temperature, not on the ramp: one grid
+    grid = retention_grid(model, solutes, _ph_contexts(method, ph_values, own_col)[1],
+                          calibration)
+
+    def scan_at(m: Method) -> ScanResult:
+        return next(iter(_ph_scans(m, model, solutes, names, ph_values, own_col, rs_target,
+                                   calibration, coverage=False, grid=grid).values()))
+
+    scans = [scan_at(stretch_ramp(method, float(ramp))) for ramp in tg]
     if calibration is not None:
         # the calibrants' window belongs to the method's own gradient; the correction acts on
         # log kw, which the ramp does not change, so coverage is judged there (as in
         # gradient_time_scan), once for the whole map
-        own = ph_scan(method, model, solutes, names, ph_values, rs_target, calibration,
-                      coverage=False)
+        own = scan_at(method)
         cov = _ph_coverage(calibration, own.rt_min, own.values,
                            " on the method's own gradient")
         for r in scans:

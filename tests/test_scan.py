@@ -26,6 +26,7 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
+import retpred.scan as scan_module
 from retpred.column import column_hsm
 from retpred.errors import InputError, MethodError
 from retpred.gradient import log_kw_from_rt, program_from_method
@@ -309,7 +310,8 @@ def test_gradient_time_scan_matches_lss_closed_form(small_model):
         assert res.best_index == int(np.nanargmax(res.min_resolution))
 
 
-def test_joint_ph_gradient_scan_agrees_with_the_one_lever_scans(small_model, acid_base):
+def test_joint_ph_gradient_scan_agrees_with_the_one_lever_scans(small_model, acid_base,
+                                                                monkeypatch):
     # two code paths: the joint scan runs a pH scan per stretched ramp; gradient_time_scan
     # computes retention once at the method's pH and builds one program per ramp. At the
     # method's pH (7.0, a grid point) their times must be the same numbers.
@@ -317,7 +319,17 @@ def test_joint_ph_gradient_scan_agrees_with_the_one_lever_scans(small_model, aci
     method = _method(program=((0.0, 5.0, 1.0), (10.0, 95.0, 1.0), (14.0, 95.0, 1.0)))
     ph = parse_range("3:9:1", "--ph")
     ramps = np.array([5.0, 10.0, 20.0])
+    calls = []
+    real_grid = scan_module.retention_grid
+
+    def counted(*args, **kwargs):
+        calls.append(1)
+        return real_grid(*args, **kwargs)
+
+    monkeypatch.setattr(scan_module, "retention_grid", counted)
     joint = ph_gradient_scan(method, small_model, sol, names, ph, ramps)
+    # retention does not depend on the ramp: one grid serves the whole map
+    assert len(calls) == 1
     one = gradient_time_scan(method, small_model, sol, names, ramps)
     at7 = int(np.flatnonzero(ph == 7.0)[0])
     for i in range(ramps.size):
