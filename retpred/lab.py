@@ -221,6 +221,14 @@ def train_lab_model(
         raise InputError("refusing to overwrite the shipped default model", path=str(out))
     inputs = [*data, *methods, base_model]
     base = load_model(base_model)
+    if base.meta_.get("lab_trained") or base.lab_linear_ is not None:
+        # its correction would be fitted on top of the first one and then stored in its
+        # place (the correction acts on the open-data prediction): refuse, do not compose
+        raise InputError(
+            "this is already a lab model (trained " + str(base.meta_.get("lab_trained", "?"))
+            + "); build a lab model from an open-data model: train again from the shipped "
+            "model with all in-house files at once (several files, one --method each)",
+            path=str(base_model), field="--model")
     rows_smiles, rows_rt, rows_method = [], [], []
     preps = []
     for i, path in enumerate(data):

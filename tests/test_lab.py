@@ -130,6 +130,23 @@ def test_never_overwrites_without_force_nor_the_default(lab_case):
     assert isinstance(pd.read_csv(lab_case["dir"] / "inhouse.csv"), pd.DataFrame)
 
 
+def test_a_lab_model_is_not_a_base_model(lab_case, tmp_path):
+    # a second correction would be fitted on the first one's output and stored in its place
+    # (apply_lab acts on the open-data prediction): refused, with the route that works
+    lab = tmp_path / "lab.skops"
+    train_lab_model([lab_case["dir"] / "inhouse.csv"], [lab_case["method"]], out=lab,
+                    base_model=lab_case["base"], quiet=True)
+    before = lab.read_bytes()
+    res = CliRunner().invoke(app, ["train", str(lab_case["dir"] / "inhouse.csv"), "-m",
+                                   str(lab_case["method"]), "--out", str(tmp_path / "again.skops"),
+                                   "--model", str(lab)])
+    text = " ".join(res.output.split())
+    assert res.exit_code == 2, res.output
+    assert "already a lab model" in text and "all in-house files at once" in text
+    assert "Traceback" not in res.output
+    assert not (tmp_path / "again.skops").exists() and lab.read_bytes() == before
+
+
 def test_predicting_off_the_lab_conditions_is_noted(lab_case, tmp_path):
     # A lab correction is learned on one system; a method whose pH (beyond the 0.3-unit
     # tolerance, our choice), modifier or column differs gets a note, the same system none.
