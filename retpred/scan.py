@@ -464,9 +464,16 @@ def robust_windows(values: np.ndarray, min_rs: np.ndarray, rs_target: float,
 #: less certain than 5 %)
 PH_BEST_RS_SHARE = 0.05
 
+#: pH scans: among equally central candidates, one at least this far inside the column's
+#: usable pH range is preferred (pH units; common practice, from memory: work about half a
+#: unit inside the rated range, where a buffer made up a little off stays inside it and the
+#: bonded phase or silica ages least); farther than that is no better
+PH_LIMIT_CLEARANCE = 0.5
+
 
 def _best(min_rs: np.ndarray, run_min: np.ndarray, values: np.ndarray | None = None,
-          gaps: np.ndarray | None = None, rs_target: float | None = None) -> int:
+          gaps: np.ndarray | None = None, rs_target: float | None = None,
+          limits: tuple[float, float] | None = None) -> int:
     """Index of the best point: the largest smallest Rs (ties within 0.01: shorter run).
 
     With ``rs_target`` (a gradient-time scan), the shortest run among the points whose
@@ -477,7 +484,9 @@ def _best(min_rs: np.ndarray, run_min: np.ndarray, values: np.ndarray | None = N
     largest smallest Rs is a candidate, and the one farthest from the ends of its run of
     consecutive candidates (broken by ``gaps``, as :func:`robust_windows` is) is taken:
     the middle of a plateau, where a buffer made up 0.2 units off or a pKa predicted a
-    little wrong costs least, rather than its edge. Ties: larger Rs, then shorter run.
+    little wrong costs least, rather than its edge. Ties: farther inside the column's
+    usable range ``limits`` (up to :data:`PH_LIMIT_CLEARANCE`), then larger Rs, then
+    shorter run.
     """
     if min_rs.size == 0:
         return -1
@@ -499,8 +508,12 @@ def _best(min_rs: np.ndarray, run_min: np.ndarray, values: np.ndarray | None = N
         inside = (values >= lo) & (values <= hi) & good
         margin[inside] = np.minimum(values[inside] - lo, hi - values[inside])
     rs_key = np.where(np.isfinite(min_rs), min_rs, -np.inf)
+    clearance = np.zeros(min_rs.size)
+    if limits is not None:
+        inside = np.minimum(values - limits[0], limits[1] - values)
+        clearance = np.clip(np.round(inside, 6), 0.0, PH_LIMIT_CLEARANCE)
     # lexsort: the last key is the primary one
-    return int(np.lexsort((run_key, -rs_key, -margin))[0])
+    return int(np.lexsort((run_key, -rs_key, -clearance, -margin))[0])
 
 
 def _elute_points(method: Method, programs, t0_min: float, log_kw: np.ndarray, s: np.ndarray,
@@ -558,7 +571,8 @@ def _assemble(method: Method, setting: str, values, names, rt, sigma, plates, st
         warnings.append("fewer than two analytes elute at some points: no resolution there")
     vals = np.asarray(values, dtype=float)
     if setting == SETTING_PH:
-        best = _best(min_rs, run, vals, gaps)
+        best = _best(min_rs, run, vals, gaps,
+                     limits=(method.column.ph_min, method.column.ph_max))
     else:
         best = _best(min_rs, run, rs_target=rs_target)
     return ScanResult(

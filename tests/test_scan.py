@@ -464,6 +464,17 @@ def test_best_ph_is_the_middle_of_the_plateau_not_its_edge():
     run3 = run.copy()
     run3[2] = 8.0
     assert ph[_best(rs3, run3, ph)] == 3.0
+    # equal margins at the column's limit: the point inside it is taken over the one at
+    # it, though its Rs is smaller (a two-point plateau at pH 2-2.25 of a column rated
+    # 2-8; work inside the rated range, common practice, from memory)
+    ph4 = np.array([2.0, 2.25, 2.5, 2.75, 3.0])
+    rs4 = np.array([1.84, 1.80, 1.70, 1.73, 1.72])
+    run4 = np.full(ph4.size, 10.0)
+    assert ph4[_best(rs4, run4, ph4)] == 2.0  # without the limits: the larger Rs
+    assert ph4[_best(rs4, run4, ph4, limits=(2.0, 8.0))] == 2.25
+    # beyond PH_LIMIT_CLEARANCE the distance to the limits no longer counts (rs3 again)
+    # (pH 3 is 1 unit inside, pH 5 is 3 units inside: both count as 0.5)
+    assert ph[_best(rs3, run3, ph, limits=(2.0, 8.0))] == 3.0
 
 
 @settings(max_examples=200, deadline=None)
