@@ -87,7 +87,14 @@ REFERENCE_TEMPERATURE_C = 30.0
 #: n / (n + MEMORY_SHRINK) of its mean residual. The left-out-source CV is flat between 0.3
 #: and 3 (DEVELOPERS.md "Compound memory").
 MEMORY_SHRINK = 1.0
-MEMORY_ITERATIONS = 5
+#: Backfitting sweeps of the compound memory; after each, the rows are reweighted (Huber).
+MEMORY_ITERATIONS = 20
+#: Huber's c of the memory's reweighting, in units of the residuals' robust scale
+#: (1.4826 x their median absolute value): a row further out than c scales counts as if it
+#: were c scales out (1.345: 95 % efficiency under normal errors; Huber, Ann. Math. Stat.
+#: 1964). A structure drawn wrongly or a peak assigned to the wrong compound in one source
+#: no longer sets the compound's offset for every other (DEVELOPERS.md "Compound memory").
+MEMORY_HUBER_C = 1.345
 #: Compound factors: rank, ridge penalty on each compound's factor vector (the loadings of
 #: the training systems get 1.0 too), least number of training systems a compound needs,
 #: alternating-least-squares sweeps. Chosen with the calibration they serve on the
@@ -827,22 +834,34 @@ def _skeleton_means(keys, skeleton: list[str], values: dict) -> dict:
 def fit_compound_memory(
     resid: np.ndarray, compound: np.ndarray, system: np.ndarray,
     shrink: float = MEMORY_SHRINK, n_iter: int = MEMORY_ITERATIONS,
+    huber_c: float | None = MEMORY_HUBER_C,
 ) -> tuple[np.ndarray, np.ndarray]:
-    """Compound effects of the additive model ``r_ij = a_j + u_i + e`` by backfitting.
+    """Compound effects of the additive model ``r_ij = a_j + u_i + e`` by iteratively
+    reweighted backfitting (a Huber M-estimate; Huber 1964).
 
     ``a_j`` (system offset: dwell volume, dead time, batch; not kept, a user's system is
-    calibrated instead) is the mean over its compounds of ``r - u``; ``u_i`` is the shrunken
-    mean over its systems of ``r - a``, ``sum(r - a) / (n_i + shrink)`` (a ridge penalty on
-    ``u``). Returns ``(unique compounds, u)``.
+    calibrated instead) is the weighted mean over its compounds of ``r - u``; ``u_i`` is the
+    weighted mean over its ``n_i`` systems of ``r - a`` shrunk by ``n_i / (n_i + shrink)``
+    (a ridge penalty on ``u``; the weights locate the mean, the count of systems sets the
+    shrinkage). The weights start at 1; after each sweep they are ``w = min(1, c s / |e|)``,
+    ``e = r - a - u``, ``s = 1.4826 median |e|`` (``huber_c`` c; None, or a zero scale,
+    keeps them at 1: the least-squares backfit). Returns ``(unique compounds, u)``.
     """
     comps, ci = np.unique(compound, return_inverse=True)
     _, si = np.unique(system, return_inverse=True)
-    n_c = np.bincount(ci).astype(float)
-    n_s = np.bincount(si).astype(float)
+    n_c = np.bincount(ci, minlength=comps.size).astype(float)
     u = np.zeros(comps.size)
+    w = np.ones(resid.size)
     for _ in range(n_iter):
-        a = np.bincount(si, resid - u[ci]) / n_s
-        u = np.bincount(ci, resid - a[si], minlength=comps.size) / (n_c + shrink)
+        a = np.bincount(si, w * (resid - u[ci])) / np.bincount(si, w)
+        u = (np.bincount(ci, w * (resid - a[si]), minlength=comps.size)
+             / np.bincount(ci, w, minlength=comps.size)) * n_c / (n_c + shrink)
+        if huber_c is None:
+            continue
+        e = np.abs(resid - a[si] - u[ci])
+        scale = 1.4826 * float(np.median(e))
+        if scale > 1e-9:
+            w = np.minimum(1.0, huber_c * scale / np.maximum(e, 1e-12))
     return comps, u
 
 

@@ -304,8 +304,9 @@ share a direction across sources, and the terms made the errors worse.
 
 Compound memory: for the {count('n_memory_compounds')}structures of the training
 data, the model keeps the shrunken mean of their training residuals (after each system's
-offset), keyed by a hash of the standardised SMILES (enantiomers and their racemate share
-one entry, since an achiral column retains them alike, while diastereomers keep their own;
+offset; a Huber M-estimate, so that one wrong row of a compound does not set it), keyed
+by a hash of the standardised SMILES (enantiomers and their racemate share one entry,
+since an achiral column retains them alike, while diastereomers keep their own;
 salt forms pool with their parent); the left-out-source figures above include it (a compound
 measured by other sources than the left-out one is remembered from those). A stereoisomer
 that training does not hold takes the mean of those it does

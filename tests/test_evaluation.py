@@ -138,10 +138,12 @@ def test_coelution_risk_is_calibrated_on_left_out_systems(small_training_set, sm
             big += 1
             assert abs(sel["risk"].mean() - sel["unresolved"].mean()) < 0.05, b
     assert big >= 2
-    # risk must separate: pairs at higher risk are unresolved more often
-    hi = test[test["risk"] >= 0.1]["unresolved"].mean()
-    lo = test[test["risk"] < 0.05]["unresolved"].mean()
-    assert hi > lo
+    # risk must separate: pairs in the top quarter of risk are unresolved more often than
+    # those in the bottom quarter (quarters, not fixed thresholds: zero-shot, a bin below
+    # risk 0.05 held 70 of 2,532 pairs, too few to compare)
+    risk, unres = test["risk"].to_numpy(), test["unresolved"].to_numpy()
+    q1, q3 = np.quantile(risk, [0.25, 0.75])
+    assert unres[risk >= q3].mean() > unres[risk <= q1].mean() + 0.03
 
 
 @pytest.mark.opendata

@@ -171,6 +171,35 @@ def test_compound_memory_recovers_an_additive_two_way_layout():
     np.testing.assert_allclose(u_shrunk, expect)
 
 
+def test_compound_memory_is_not_set_by_one_gross_error():
+    """With Huber reweighting (Huber 1964: an M-estimate's influence is bounded; any
+    robust-statistics text), one wrong row among a compound's six (a structure drawn
+    wrongly, a peak assigned to the wrong compound) moves its offset by a fraction of what it
+    moves the least-squares backfit's, and the other compounds keep theirs. Planted additive
+    layout with small deterministic noise; the numbers are arbitrary, not chemistry."""
+    from retpred.model import fit_compound_memory
+
+    rng = np.random.default_rng(5)
+    u_true = rng.normal(0, 0.4, 8)
+    a_true = rng.normal(0, 0.3, 6)
+    comp, sysi = np.meshgrid(np.arange(8), np.arange(6), indexing="ij")
+    comp, sysi = comp.ravel(), sysi.ravel()
+    r = u_true[comp] + a_true[sysi] + rng.normal(0, 0.03, comp.size)
+    bad = np.flatnonzero((comp == 2) & (sysi == 4))[0]
+    r[bad] += 2.0
+
+    def centred(huber_c):
+        _, u = fit_compound_memory(r, comp, sysi, shrink=0.0, n_iter=30, huber_c=huber_c)
+        return u - u.mean() - (u_true - u_true.mean())
+
+    plain, robust = centred(None), centred(1.345)
+    # least squares: the wrong row moves compound 2 by about 2.0 / 6 (minus what the
+    # system offset takes)
+    assert abs(plain[2]) > 0.2
+    assert abs(robust[2]) < 0.25 * abs(plain[2])
+    assert np.max(np.abs(np.delete(robust, 2))) < 0.06
+
+
 def test_compound_factors_complete_a_planted_low_rank_layout():
     """``fit_compound_factors`` is a ridge-regularised alternating-least-squares completion
     of a low-rank matrix (the standard matrix-factorisation algorithm; any numerical linear
