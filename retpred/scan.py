@@ -510,8 +510,8 @@ def _best(min_rs: np.ndarray, run_min: np.ndarray, values: np.ndarray | None = N
     rs_key = np.where(np.isfinite(min_rs), min_rs, -np.inf)
     clearance = np.zeros(min_rs.size)
     if limits is not None:
-        inside = np.minimum(values - limits[0], limits[1] - values)
-        clearance = np.clip(np.round(inside, 6), 0.0, PH_LIMIT_CLEARANCE)
+        depth = np.minimum(values - limits[0], limits[1] - values)
+        clearance = np.clip(np.round(depth, 6), 0.0, PH_LIMIT_CLEARANCE)
     # lexsort: the last key is the primary one
     return int(np.lexsort((run_key, -rs_key, -clearance, -margin))[0])
 
@@ -916,14 +916,15 @@ def ph_gradient_scan(
     tg = np.unique(np.asarray(ramp_times_min, dtype=float).ravel())
     if tg.size == 0 or not np.all(np.isfinite(tg)) or np.any(tg <= 0):
         raise InputError("gradient times must be finite and > 0 min", field="--gradient-time")
-    own_col = {_own_label(method): method.column}
+    label = _own_label(method)
+    own_col = {label: method.column}
     # retention depends on pH, column, modifier and temperature, not on the ramp: one grid
     grid = retention_grid(model, solutes, _ph_contexts(method, ph_values, own_col)[1],
                           calibration)
 
     def scan_at(m: Method) -> ScanResult:
-        return next(iter(_ph_scans(m, model, solutes, names, ph_values, own_col, rs_target,
-                                   calibration, coverage=False, grid=grid).values()))
+        return _ph_scans(m, model, solutes, names, ph_values, own_col, rs_target,
+                         calibration, coverage=False, grid=grid)[label]
 
     scans = [scan_at(stretch_ramp(method, float(ramp))) for ramp in tg]
     if calibration is not None:
